@@ -1,0 +1,277 @@
+"""The engine: validated settings, prepared state, block processing.
+
+Three phases, as in any real-time processor: construct an :class:`Engine`
+for a channel count and sample rate (everything is sized and the kernel is
+compiled and warmed there), call :meth:`Engine.process` on blocks of any size
+(zero included), and read its counters.  The offline renderer, the pipe and
+the live callback all drive the same compiled :func:`rtstage.kernel.process_block`.
+
+Examples
+--------
+>>> import numpy as np
+>>> from rtstage import Engine, EngineSettings
+>>> engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=7),
+...                 nchannels=2, samplerate=44100)
+>>> words = engine.process(np.zeros((512, 2)))
+>>> words.dtype, words.shape
+(dtype('int16'), (512, 2))
+"""
+
+import math
+import secrets
+import sys
+from dataclasses import dataclass, asdict, replace
+
+import numpy as np
+
+from . import kernel as K
+from .dither import DITHER_KINDS, feedback_peak_lsb
+from .errors import RtstageError
+from .shapers import MAX_TAPS, Shaper, get_shaper
+
+MIN_BITS = 2
+MAX_BITS = 24
+MIN_SAMPLERATE = 8000
+MAX_SAMPLERATE = 384000
+MAX_CHANNELS = 64
+GAIN_RAMP_SECONDS = 0.010
+"""Duration of a gain (or mute) ramp: 10 ms, long enough to avoid zipper noise."""
+
+SEED_MAX = 2**64 - 1
+
+
+def new_seed():
+    """A random 64-bit seed (from the operating system's generator)."""
+    return secrets.randbits(64)
+
+
+def container_bits(bits):
+    """Smallest integer container (16 or 24 bits) that holds a ``bits``-bit word."""
+    return 16 if bits <= 16 else 24
+
+
+@dataclass(frozen=True)
+class EngineSettings:
+    """Everything that decides the engine's output words.
+
+    Parameters
+    ----------
+    bits : int
+        Target word length, 2..24.
+    dither : str
+        Dither kind id: ``none``, ``rpdf``, ``tpdf``, ``tpdf-hp``, ``gaussian``.
+    shaper : str or Shaper
+        Shaper id (built-in or preset), a path to a shaper file, or a Shaper.
+    seed : int or None
+        Dither seed, 0..2^64-1; None picks a random one at :meth:`resolved`.
+    gain_db : float
+        Gain before the quantizer, in dB.
+    dither_scale : float
+        Expert setting: dither amplitude relative to the textbook amplitude.
+    force : bool
+        Accept combinations that theory marks unsafe (see :meth:`validate`).
+    """
+
+    bits: int = 16
+    dither: str = "tpdf"
+    shaper: object = "flat"
+    seed: object = None
+    gain_db: float = 0.0
+    dither_scale: float = 1.0
+    force: bool = False
+
+    def resolved(self):
+        """A copy with a concrete seed and a :class:`Shaper` object, validated."""
+        s = self
+        if s.seed is None:
+            s = replace(s, seed=new_seed())
+        if not isinstance(s.shaper, Shaper):
+            s = replace(s, shaper=get_shaper(s.shaper))
+        s.validate()
+        return s
+
+    @property
+    def shaper_id(self):
+        """The shaper's id whether ``shaper`` holds an id or a Shaper."""
+        return self.shaper.id if isinstance(self.shaper, Shaper) else str(self.shaper)
+
+    def validate(self):
+        """Raise :class:`RtstageError` naming the first setting that cannot be used.
+
+        Refused unless ``force``:
+
+        * noise shaping without dither: the fed-back error is then a
+          deterministic function of the signal, so the loop turns low-level
+          signals into distortion and idle tones instead of noise;
+        * a dither that is not i.i.d. (``tpdf-hp``) inside a feedback shaper:
+          the proof that TPDF makes the total error's first two moments
+          independent of the signal needs independent dither values, and
+          correlated dither inside the loop loses it (Lipshitz, Wannamaker &
+          Vanderkooy, "Dithered noise shapers and recursive digital filters",
+          JAES 52(11), 2004).
+        """
+        if isinstance(self.bits, bool) or not isinstance(self.bits, (int, np.integer)):
+            raise RtstageError(f"bits must be an integer, got {self.bits!r}")
+        if not MIN_BITS <= self.bits <= MAX_BITS:
+            raise RtstageError(f"bits must be between {MIN_BITS} and {MAX_BITS}, got {self.bits}")
+        if self.dither not in DITHER_KINDS:
+            raise RtstageError(f"unknown dither '{self.dither}' (known: {', '.join(DITHER_KINDS)})")
+        if self.seed is not None:
+            if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or not 0 <= self.seed <= SEED_MAX:
+                raise RtstageError(f"seed must be an integer from 0 to 2^64-1, got {self.seed!r}")
+        for name in ("gain_db", "dither_scale"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+                raise RtstageError(f"{name} must be a finite number, got {value!r}")
+        if not -120.0 <= self.gain_db <= 40.0:
+            raise RtstageError(f"gain_db must be between -120 and +40 dB, got {self.gain_db}")
+        if not 0.0 <= self.dither_scale <= 4.0:
+            raise RtstageError(f"dither_scale must be between 0 and 4, got {self.dither_scale}")
+        shaper = self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper)
+        if shaper.ntaps > MAX_TAPS:
+            raise RtstageError(f"shaper '{shaper.id}' has {shaper.ntaps} taps; at most {MAX_TAPS}")
+        if shaper.ntaps and not self.force:
+            if self.dither == "none" or self.dither_scale == 0.0:
+                raise RtstageError(
+                    f"shaper '{shaper.id}' without dither refused: undithered error feedback turns low-level "
+                    "signals into distortion and idle tones; use --dither tpdf, or --force to accept it"
+                )
+            if not DITHER_KINDS[self.dither].iid:
+                raise RtstageError(
+                    f"dither '{self.dither}' inside shaper '{shaper.id}' refused: it is not i.i.d., and correlated "
+                    "dither in a feedback loop no longer makes the error's moments signal-independent "
+                    "(Lipshitz, Wannamaker & Vanderkooy, JAES 2004); use --dither tpdf, or --force to accept it"
+                )
+
+    def to_dict(self):
+        """Plain-data form (for status, logs and presets)."""
+        d = asdict(self)
+        d["shaper"] = self.shaper_id
+        return d
+
+
+class Engine:
+    """Requantizer for ``nchannels`` channels at ``samplerate``.
+
+    Parameters
+    ----------
+    settings : EngineSettings
+        Word length, dither, shaper, seed, gain.  A missing seed is drawn here
+        and can be read back from ``engine.settings.seed``.
+    nchannels : int
+        Channel count, 1..64.
+    samplerate : int
+        Sample rate in Hz, 8000..384000.
+    container : int or None
+        Output container width in bits (16, 24 or 32); None picks the smallest
+        of 16 and 24 that holds ``bits``.  24-bit words are left-justified in
+        int32.
+    start_frame : int
+        Sample index of the first frame (dither is a function of it).
+    """
+
+    def __init__(self, settings, nchannels, samplerate, container=None, start_frame=0):
+        if isinstance(nchannels, bool) or not isinstance(nchannels, (int, np.integer)) or not 1 <= nchannels <= MAX_CHANNELS:
+            raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {nchannels}")
+        if not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE:
+            raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
+        self.settings = settings.resolved()
+        self.nchannels = int(nchannels)
+        self.samplerate = samplerate
+        self.container = container_bits(self.settings.bits) if container is None else int(container)
+        if self.container not in (16, 24, 32) or self.container < self.settings.bits:
+            raise RtstageError(f"a {self.settings.bits}-bit word does not fit a {self.container}-bit container")
+        self.dtype = np.int16 if self.container == 16 else np.int32
+        self.state = K.KernelState(self.nchannels)
+        self.apply(self.settings, ramp=False)
+        self.state.reset(start_frame)
+        warm_kernel(self.dtype)
+
+    @property
+    def out_shift(self):
+        """Left shift from the word to its container."""
+        width = 16 if self.container == 16 else 32
+        return width - self.settings.bits
+
+    def apply(self, settings, ramp=True):
+        """Load new settings at the next block boundary; gain changes ramp unless ``ramp`` is False.
+
+        The word length may not change the container (a 16-bit engine cannot
+        switch to 20 bits).  The seed is kept from the engine's start.
+        """
+        settings = replace(settings, seed=self.settings.seed if hasattr(self, "state") else settings.seed)
+        settings = settings.resolved()
+        if hasattr(self, "state") and container_bits(settings.bits) > self.container:
+            raise RtstageError(f"bits={settings.bits} does not fit this engine's {self.container}-bit output")
+        self.settings = settings
+        st = self.state
+        kind = DITHER_KINDS[settings.dither]
+        shaper = settings.shaper
+        st.iparams[K.IP_BITS] = settings.bits
+        st.iparams[K.IP_DITHER] = kind.code
+        st.iparams[K.IP_NTAPS] = shaper.ntaps
+        st.iparams[K.IP_SEED] = np.uint64(settings.seed).view(np.int64)
+        st.iparams[K.IP_OUT_SHIFT] = self.out_shift
+        st.iparams[K.IP_RAMP_FRAMES] = max(1, round(GAIN_RAMP_SECONDS * self.samplerate))
+        st.fparams[K.FP_COEF0 : K.FP_COEF0 + MAX_TAPS] = 0.0
+        st.fparams[K.FP_COEF0 : K.FP_COEF0 + shaper.ntaps] = shaper.coefs
+        st.fparams[K.FP_DITHER_SCALE] = settings.dither_scale
+        st.fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
+        st.fparams[K.FP_GAIN] = 10.0 ** (settings.gain_db / 20.0)
+        if not ramp:
+            st.ramp[K.RAMP_GAIN] = st.fparams[K.FP_GAIN]
+            st.ramp[K.RAMP_TARGET] = st.fparams[K.FP_GAIN]
+            st.clock[K.CLK_RAMP_LEFT] = 0
+
+    @property
+    def frame(self):
+        """Sample index of the next frame to be processed."""
+        return int(self.state.clock[K.CLK_FRAME])
+
+    @property
+    def clipped(self):
+        """Clipped samples per channel since the start."""
+        return self.state.counts[:, K.CNT_CLIPPED].copy()
+
+    @property
+    def nonfinite(self):
+        """Replaced NaN/Inf samples per channel since the start."""
+        return self.state.counts[:, K.CNT_NONFINITE].copy()
+
+    def process(self, x, out=None):
+        """Requantize a block ``x`` of shape (frames, nchannels), float32 or float64.
+
+        Returns the output words, shape (frames, nchannels), int16 for a 16-bit
+        container and left-justified int32 otherwise.  Pass ``out`` to reuse
+        an array; then nothing is allocated.
+        """
+        x = np.asarray(x)
+        if x.ndim != 2 or x.shape[1] != self.nchannels:
+            raise RtstageError(f"expected a block of shape (frames, {self.nchannels}), got {x.shape}")
+        if x.dtype not in (np.float32, np.float64):
+            x = x.astype(np.float64)
+        if out is None:
+            out = np.empty(x.shape, dtype=self.dtype)
+        K.process_block(x, out, x.shape[0], *self.state.arrays())
+        return out
+
+
+_WARM = set()
+
+
+def warm_kernel(out_dtype, in_dtypes=(np.float32, np.float64)):
+    """Compile (or load from the numba cache) and run the kernel once for these types."""
+    for in_dtype in in_dtypes:
+        key = (np.dtype(in_dtype), np.dtype(out_dtype))
+        if key in _WARM:
+            continue
+        st = K.KernelState(1)
+        st.iparams[K.IP_BITS] = 16
+        st.iparams[K.IP_DITHER] = K.DITHER_TPDF
+        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), 4, *st.arrays())
+        _WARM.add(key)
+
+
+def log(message):
+    """One line on stderr (stdout is reserved for data in pipe mode)."""
+    print(f"rtstage: {message}", file=sys.stderr, flush=True)

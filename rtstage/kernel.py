@@ -1,0 +1,295 @@
+"""The compiled requantization kernel shared by every driver.
+
+One function, :func:`process_block`, does all the audio work: gain with a
+linear ramp, replacement of non-finite samples, error-feedback noise shaping,
+dither, rounding, clipping and word packing.  The offline renderer, the pipe
+and the live callback call it with the same arrays, so their words agree bit
+for bit by construction.
+
+Real-time contract
+------------------
+``process_block`` is compiled with ``nopython`` and ``nogil``, without
+``fastmath``; it allocates nothing, takes no lock, does no I/O and raises
+nothing (``error_model="numpy"``).  All of its state lives in preallocated
+arrays owned by the caller (see :class:`KernelState`), so processing a signal
+block by block gives the same words as processing it in one call, for any
+split, blocks of zero frames included.
+
+Quantizer
+---------
+Input is in full-scale units (±1.0).  With ``bits`` = B the step is
+Q = 2^-(B-1); the kernel works in LSB units, ``v = x·gain·2^(B-1)``.  The
+output word is ``q = floor(v - fb + d + 1/2)`` (round to nearest, ties toward
++inf), limited to [-2^(B-1), 2^(B-1) - 1], and written as ``q << out_shift``
+so that a shorter word sits left-justified in its container with the unused
+low bits zero.
+
+Dither from (seed, channel, sample index)
+-----------------------------------------
+For sample index n on channel c the kernel takes the four words of
+Philox4x64-10 with key ``(seed, c)`` and counter ``(n >> 1, 0, 0, 0)``; sample n
+uses words ``2·(n & 1)`` and ``2·(n & 1) + 1``, called a and b.  A word w maps
+to a uniform ``U(w) = ((w >> 12) + 1/2)·2^-52 - 1/2`` in (-1/2, 1/2), exactly
+symmetric about 0.  Then, in LSB and before the amplitude scale:
+
+* ``rpdf``: U(a)
+* ``tpdf``: U(a) + U(b)
+* ``tpdf-hp``: U(a[n]) - U(a[n-1])
+* ``gaussian``: 0.5·sqrt(-2 ln(U(a) + 1/2))·cos(2π(U(b) + 1/2))
+
+Clip rule
+---------
+When a sample clips, the error fed back to the shaper is limited to
+±``feedback_peak`` LSB, the largest error an unclipped sample can have (half a
+step plus the dither's peak).  A clipped burst therefore disturbs the shaper
+no more than ordinary noise does, and it cannot drive the loop unstable.  The
+price is that the clipped excess is not spread into the noise: it is simply
+lost, as in any clipper.  A non-finite input sample is replaced (NaN by 0,
+±Inf by ±full scale), counted, and the channel's error history is cleared.
+Fed-back errors smaller than 1e-30 LSB are stored as zero, so no denormal
+value ever enters the state.
+"""
+
+import math
+
+import numpy as np
+from numba import njit
+
+from ._philox import philox4x64
+from .shapers import MAX_TAPS
+
+# --- integer parameters (int64) -----------------------------------------------------
+IP_BITS = 0
+"""Target word length B, 2..24."""
+IP_DITHER = 1
+"""Dither code (see :mod:`rtstage.dither`)."""
+IP_NTAPS = 2
+"""Number of error-filter taps in use."""
+IP_SEED = 3
+"""Dither seed: the uint64 seed's bit pattern."""
+IP_OUT_SHIFT = 4
+"""Left shift that places a B-bit word in its container."""
+IP_RAMP_FRAMES = 5
+"""Length of a gain ramp, in frames (at least 1)."""
+IP_LEN = 8
+
+# --- float parameters (float64) -----------------------------------------------------
+FP_GAIN = 0
+"""Linear gain before the quantizer (the target of the ramp)."""
+FP_DITHER_SCALE = 1
+"""Dither amplitude scale (1 = the textbook amplitude)."""
+FP_FEEDBACK_PEAK = 2
+"""Bound on the fed-back error after a clip, in LSB."""
+FP_COEF0 = 8
+"""First error-filter tap h_1; taps follow contiguously."""
+FP_LEN = FP_COEF0 + MAX_TAPS
+
+# --- clock and ramp state -----------------------------------------------------------
+CLK_FRAME = 0
+"""Sample index of the next frame to process."""
+CLK_HPOS = 1
+"""Slot of the error history that the next frame writes."""
+CLK_RAMP_LEFT = 2
+"""Frames left in the current gain ramp."""
+CLK_LEN = 4
+
+RAMP_GAIN = 0
+"""Gain applied to the last frame."""
+RAMP_STEP = 1
+"""Gain increment per frame while ramping."""
+RAMP_TARGET = 2
+"""Gain the current ramp ends at."""
+RAMP_LEN = 4
+
+# --- per-channel counters -----------------------------------------------------------
+CNT_CLIPPED = 0
+"""Samples limited to the word's range."""
+CNT_NONFINITE = 1
+"""NaN and ±Inf input samples replaced."""
+CNT_LEN = 2
+
+HIST_LEN = 64
+"""Error-history length per channel (a power of two, at least MAX_TAPS)."""
+HIST_MASK = HIST_LEN - 1
+
+DITHER_NONE = 0
+DITHER_RPDF = 1
+DITHER_TPDF = 2
+DITHER_TPDF_HP = 3
+DITHER_GAUSSIAN = 4
+
+_TWO_PI = 2.0 * math.pi
+_U_SCALE = 2.0**-52
+_DENORMAL_GUARD = 1e-30
+
+
+class KernelState:
+    """Preallocated parameter and state arrays for ``nchannels`` channels.
+
+    Attributes
+    ----------
+    iparams, fparams : ndarray
+        Parameters read by the kernel at the start of every block.
+    hist : ndarray, shape (nchannels, HIST_LEN)
+        Circular error history of each channel's shaper.
+    counts : ndarray, shape (nchannels, CNT_LEN)
+        Clipped and non-finite sample counts.
+    clock : ndarray
+        Next sample index, history slot, frames left in the gain ramp.
+    ramp : ndarray
+        Current gain, step and target of the gain ramp.
+    rng_words, rng_pair : ndarray
+        Cache of the last Philox block per channel (values never depend on it).
+    """
+
+    def __init__(self, nchannels):
+        self.nchannels = int(nchannels)
+        self.iparams = np.zeros(IP_LEN, dtype=np.int64)
+        self.fparams = np.zeros(FP_LEN, dtype=np.float64)
+        self.hist = np.zeros((self.nchannels, HIST_LEN), dtype=np.float64)
+        self.counts = np.zeros((self.nchannels, CNT_LEN), dtype=np.int64)
+        self.clock = np.zeros(CLK_LEN, dtype=np.int64)
+        self.ramp = np.zeros(RAMP_LEN, dtype=np.float64)
+        self.rng_words = np.zeros((self.nchannels, 4), dtype=np.uint64)
+        self.rng_pair = np.full(self.nchannels, -2, dtype=np.int64)
+
+    def arrays(self):
+        """The arrays in the order :func:`process_block` takes them after ``x, y, nframes``."""
+        return (self.iparams, self.fparams, self.hist, self.counts, self.clock, self.ramp, self.rng_words, self.rng_pair)
+
+    def reset(self, start_frame=0):
+        """Clear history, counters and caches; the next frame gets sample index ``start_frame``."""
+        self.hist[:] = 0.0
+        self.counts[:] = 0
+        self.clock[:] = 0
+        self.clock[CLK_FRAME] = start_frame
+        self.rng_pair[:] = -2
+        gain = self.fparams[FP_GAIN]
+        self.ramp[:] = 0.0
+        self.ramp[RAMP_GAIN] = gain
+        self.ramp[RAMP_TARGET] = gain
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _uniform(word):
+    return (np.float64(word >> np.uint64(12)) + 0.5) * _U_SCALE - 0.5
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _words(seed, c, index, rng_words, rng_pair):
+    """Make ``rng_words[c]`` hold the Philox block of ``index``; return the word offset."""
+    pair = index >> 1
+    if rng_pair[c] != pair:
+        philox4x64(np.uint64(pair), np.uint64(0), np.uint64(0), np.uint64(0), seed, np.uint64(c), rng_words, c)
+        rng_pair[c] = pair
+    return (index & 1) * 2
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _dither(kind, seed, c, index, rng_words, rng_pair):
+    """Dither value in LSB (amplitude scale 1) for channel ``c`` at ``index``."""
+    if kind == DITHER_TPDF_HP:
+        j = _words(seed, c, index - 1, rng_words, rng_pair)
+        previous = _uniform(rng_words[c, j])
+        j = _words(seed, c, index, rng_words, rng_pair)
+        return _uniform(rng_words[c, j]) - previous
+    j = _words(seed, c, index, rng_words, rng_pair)
+    a = _uniform(rng_words[c, j])
+    if kind == DITHER_RPDF:
+        return a
+    b = _uniform(rng_words[c, j + 1])
+    if kind == DITHER_TPDF:
+        return a + b
+    # DITHER_GAUSSIAN, sigma = 0.5 LSB
+    return 0.5 * math.sqrt(-2.0 * math.log(a + 0.5)) * math.cos(_TWO_PI * (b + 0.5))
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_pair):
+    """Requantize ``nframes`` frames of ``x`` into ``y``.
+
+    Parameters
+    ----------
+    x : ndarray, shape (>= nframes, nchannels), float32 or float64
+        Input in full-scale units.
+    y : ndarray, shape (>= nframes, nchannels), integer
+        Output words, ``q << out_shift``.
+    nframes : int
+        Frames to process; 0 is allowed.
+    iparams, fparams, hist, counts, clock, ramp, rng_words, rng_pair : ndarray
+        Parameters and state, see :class:`KernelState`; state is updated in place.
+    """
+    nch = hist.shape[0]
+    bits = iparams[IP_BITS]
+    kind = iparams[IP_DITHER]
+    ntaps = iparams[IP_NTAPS]
+    seed = np.uint64(iparams[IP_SEED])
+    shift = iparams[IP_OUT_SHIFT]
+    scale = math.ldexp(1.0, bits - 1)
+    q_hi = scale - 1.0
+    q_lo = -scale
+    dscale = fparams[FP_DITHER_SCALE]
+    fb_peak = fparams[FP_FEEDBACK_PEAK]
+
+    # A new gain target starts a linear ramp at this block boundary.
+    target = fparams[FP_GAIN]
+    if target != ramp[RAMP_TARGET]:
+        ramp_frames = max(iparams[IP_RAMP_FRAMES], 1)
+        ramp[RAMP_TARGET] = target
+        ramp[RAMP_STEP] = (target - ramp[RAMP_GAIN]) / ramp_frames
+        clock[CLK_RAMP_LEFT] = ramp_frames
+    gain = ramp[RAMP_GAIN]
+    step = ramp[RAMP_STEP]
+    ramp_left = clock[CLK_RAMP_LEFT]
+
+    for c in range(nch):
+        rng_pair[c] = -2
+    frame0 = clock[CLK_FRAME]
+    hpos = clock[CLK_HPOS]
+
+    for n in range(nframes):
+        if ramp_left > 0:
+            ramp_left -= 1
+            gain = target if ramp_left == 0 else gain + step
+        index = frame0 + n
+        for c in range(nch):
+            xv = np.float64(x[n, c])
+            if not math.isfinite(xv):
+                counts[c, CNT_NONFINITE] += 1
+                if math.isnan(xv):
+                    xv = 0.0
+                elif xv > 0.0:
+                    xv = 1.0
+                else:
+                    xv = -1.0
+                for k in range(HIST_LEN):
+                    hist[c, k] = 0.0
+            u = xv * gain * scale
+            if ntaps > 0:
+                fb = 0.0
+                for k in range(1, ntaps + 1):
+                    fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
+                u -= fb
+            d = 0.0
+            if kind != DITHER_NONE:
+                d = _dither(kind, seed, c, index, rng_words, rng_pair) * dscale
+            q = math.floor(u + d + 0.5)
+            e = q - u
+            if q > q_hi or q < q_lo:
+                q = q_hi if q > q_hi else q_lo
+                counts[c, CNT_CLIPPED] += 1
+                e = q - u
+                if e > fb_peak:
+                    e = fb_peak
+                elif e < -fb_peak:
+                    e = -fb_peak
+            if abs(e) < _DENORMAL_GUARD:
+                e = 0.0
+            hist[c, hpos] = e
+            y[n, c] = np.int64(q) << shift
+        hpos = (hpos + 1) & HIST_MASK
+
+    clock[CLK_FRAME] = frame0 + nframes
+    clock[CLK_HPOS] = hpos
+    clock[CLK_RAMP_LEFT] = ramp_left
+    ramp[RAMP_GAIN] = gain
