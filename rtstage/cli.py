@@ -1,0 +1,49 @@
+"""The ``rtstage`` command line.
+
+Each subcommand lives in its own module, which exposes ``register(subparsers)``:
+it adds its parser(s) and sets ``handler`` (a callable taking the parsed
+arguments and returning the exit status).  Errors raised as
+:class:`rtstage.RtstageError` become one line on stderr and exit status 2.
+"""
+
+import argparse
+import importlib
+import sys
+
+from . import __version__
+from .errors import RtstageError
+
+COMMAND_MODULES = (
+    "rtstage.cli_render",
+    "rtstage.cli_shaper",
+)
+"""Modules that register subcommands, in the order ``--help`` lists them."""
+
+
+def build_parser():
+    """The full argument parser."""
+    parser = argparse.ArgumentParser(
+        prog="rtstage",
+        description="Real-time output stage: dithered requantization to a shorter word length, live or offline.",
+    )
+    parser.add_argument("--version", action="version", version=f"rtstage {__version__}")
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name in COMMAND_MODULES:
+        importlib.import_module(name).register(subparsers)
+    return parser
+
+
+def main(argv=None):
+    """Run the command line; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if getattr(args, "handler", None) is None:
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return int(args.handler(args) or 0)
+    except RtstageError as exc:
+        print(f"rtstage: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
