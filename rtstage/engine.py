@@ -205,19 +205,7 @@ class Engine:
             raise RtstageError(f"bits={settings.bits} does not fit this engine's {self.container}-bit output")
         self.settings = settings
         st = self.state
-        kind = DITHER_KINDS[settings.dither]
-        shaper = settings.shaper
-        st.iparams[K.IP_BITS] = settings.bits
-        st.iparams[K.IP_DITHER] = kind.code
-        st.iparams[K.IP_NTAPS] = shaper.ntaps
-        st.iparams[K.IP_SEED] = np.uint64(settings.seed).view(np.int64)
-        st.iparams[K.IP_OUT_SHIFT] = self.out_shift
-        st.iparams[K.IP_RAMP_FRAMES] = max(1, round(GAIN_RAMP_SECONDS * self.samplerate))
-        st.fparams[K.FP_COEF0 : K.FP_COEF0 + MAX_TAPS] = 0.0
-        st.fparams[K.FP_COEF0 : K.FP_COEF0 + shaper.ntaps] = shaper.coefs
-        st.fparams[K.FP_DITHER_SCALE] = settings.dither_scale
-        st.fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
-        st.fparams[K.FP_GAIN] = 10.0 ** (settings.gain_db / 20.0)
+        encode_params(settings, self.samplerate, self.out_shift, st.iparams, st.fparams)
         if not ramp:
             st.ramp[K.RAMP_GAIN] = st.fparams[K.FP_GAIN]
             st.ramp[K.RAMP_TARGET] = st.fparams[K.FP_GAIN]
@@ -254,6 +242,36 @@ class Engine:
             out = np.empty(x.shape, dtype=self.dtype)
         K.process_block(x, out, x.shape[0], *self.state.arrays())
         return out
+
+
+def encode_params(settings, samplerate, out_shift, iparams, fparams):
+    """Write resolved ``settings`` into kernel parameter arrays.
+
+    Parameters
+    ----------
+    settings : EngineSettings
+        Resolved settings (concrete seed, :class:`Shaper` object).
+    samplerate : int
+        Sample rate in Hz (sets the gain-ramp length).
+    out_shift : int
+        Left shift from the word to its container.
+    iparams, fparams : ndarray
+        Arrays laid out as ``rtstage.kernel.IP_*`` / ``FP_*``; the live engine
+        passes its pending parameter block here, the offline engine its own.
+    """
+    kind = DITHER_KINDS[settings.dither]
+    shaper = settings.shaper
+    iparams[K.IP_BITS] = settings.bits
+    iparams[K.IP_DITHER] = kind.code
+    iparams[K.IP_NTAPS] = shaper.ntaps
+    iparams[K.IP_SEED] = np.uint64(settings.seed).view(np.int64)
+    iparams[K.IP_OUT_SHIFT] = out_shift
+    iparams[K.IP_RAMP_FRAMES] = max(1, round(GAIN_RAMP_SECONDS * samplerate))
+    fparams[K.FP_COEF0 : K.FP_COEF0 + MAX_TAPS] = 0.0
+    fparams[K.FP_COEF0 : K.FP_COEF0 + shaper.ntaps] = shaper.coefs
+    fparams[K.FP_DITHER_SCALE] = settings.dither_scale
+    fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
+    fparams[K.FP_GAIN] = 10.0 ** (settings.gain_db / 20.0)
 
 
 _WARM = set()
