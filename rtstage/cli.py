@@ -15,6 +15,7 @@ from .errors import RtstageError
 
 COMMAND_MODULES = (
     "rtstage.cli_render",
+    "rtstage.cli_demo",
     "rtstage.cli_shaper",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
