@@ -1,7 +1,214 @@
-"""The ``rtstage shaper`` subcommand: list, design and plot noise shapers."""
+"""The ``rtstage shaper`` subcommand: list, design and plot noise shapers.
+
+``rtstage shaper list``
+    Every built-in and preset shaper with its figures (text table or JSON).
+``rtstage shaper design --samplerate R --taps N --weighting W [...]``
+    Design the optimal error filter for a rate and weighting; ``--save FILE``
+    writes it as a shaper preset usable by ``render`` and ``run``.
+``rtstage shaper plot ID``
+    The NTF curve: a PNG with matplotlib (``--png FILE``), else text or JSON.
+
+Figures and curves go to stdout (data); log lines go to stderr.
+"""
+
+import json
+import math
+import sys
+
+from . import design as D
+from .errors import RtstageError
+from .shapers import all_shapers, get_shaper
 
 
 def register(subparsers):
-    """Add the ``shaper`` parser to ``subparsers``."""
-    parser = subparsers.add_parser("shaper", help="list, design and plot noise shapers")
-    parser.set_defaults(handler=lambda args: parser.print_help() or 2)
+    """Add the ``shaper`` parser and its ``list``, ``design`` and ``plot`` subcommands."""
+    parser = subparsers.add_parser(
+        "shaper",
+        help="list, design and plot noise shapers",
+        description="List the noise shapers with their figures, design new ones for any sample rate, plot their NTF.",
+    )
+    parser.set_defaults(handler=lambda args: _usage(parser))
+    sub = parser.add_subparsers(dest="shaper_command", metavar="ACTION")
+
+    p = sub.add_parser("list", help="every built-in and preset shaper with its figures")
+    p.add_argument("--samplerate", type=float, help="rate for the frequency figures (default: each shaper's design rate, else 44100)")
+    p.add_argument("--json", action="store_true", help="JSON instead of a text table")
+    p.set_defaults(handler=run_list)
+
+    p = sub.add_parser(
+        "design",
+        help="design an error-feedback filter for a sample rate and weighting",
+        description=(
+            "Design the error filter that minimises the weighted added-noise power: the linear predictor of the "
+            "weighting's power spectrum (Gerzon & Craven, AES 1989). Caps on the NTF's maximum gain and on the total "
+            "noise gain are met by narrowing the weighting's range."
+        ),
+    )
+    p.add_argument("--samplerate", type=float, required=True, help="design sample rate in Hz")
+    p.add_argument("--taps", type=int, required=True, help="error-filter taps, 1..32")
+    p.add_argument("--weighting", default="threshold", choices=sorted(D.WEIGHTINGS), help="what the design minimises (default threshold)")
+    p.add_argument("--table", help="weighting table file of 'Hz dB' rows (higher dB = more audible); implies --weighting table")
+    p.add_argument("--max-gain-db", type=float, help="cap on the NTF's maximum gain in dB (>= 0)")
+    p.add_argument("--max-noise-gain-db", type=float, help="cap on the total noise-power gain in dB (>= 0)")
+    p.add_argument("--range-db", type=float, default=D.DEFAULT_RANGE_DB, help=f"weighting range below its peak, dB (default {D.DEFAULT_RANGE_DB:g})")
+    p.add_argument("--audible-limit-hz", type=float, default=D.AUDIBLE_LIMIT_HZ, help="above this the weighting sits at its floor (default 20000)")
+    p.add_argument("--id", dest="shaper_id", help="id of the designed shaper (default e.g. thr9-48k)")
+    p.add_argument("--save", metavar="FILE", help="write the design as a shaper preset (.toml)")
+    p.add_argument("--json", action="store_true", help="print the design as JSON")
+    p.set_defaults(handler=run_design)
+
+    p = sub.add_parser("plot", help="the NTF curve of a shaper")
+    p.add_argument("shaper", help="shaper id or shaper .toml")
+    p.add_argument("--samplerate", type=float, help="sample rate in Hz (default: the design rate, else 44100)")
+    p.add_argument("--points", type=int, default=512, help="frequency intervals from 0 to fs/2 (default 512)")
+    p.add_argument("--json", action="store_true", help="JSON instead of 'Hz dB' text rows")
+    p.add_argument("--png", metavar="FILE", help="draw the curve into an image (needs matplotlib)")
+    p.set_defaults(handler=run_plot)
+
+
+def _usage(parser):
+    parser.print_help(sys.stderr)
+    return 2
+
+
+def _log(message):
+    print(f"rtstage: {message}", file=sys.stderr, flush=True)
+
+
+def _json_safe(value):
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _check_rate(samplerate):
+    if samplerate is not None and not D.MIN_SAMPLERATE_HZ <= samplerate <= D.MAX_SAMPLERATE_HZ:
+        raise RtstageError(f"sample rate must be between {D.MIN_SAMPLERATE_HZ} and {D.MAX_SAMPLERATE_HZ} Hz, got {samplerate:g}")
+
+
+def run_list(args):
+    """Print every shaper's figures."""
+    _check_rate(args.samplerate)
+    rows = []
+    for sid, shaper in all_shapers().items():
+        fig = D.shaper_figures(shaper, args.samplerate, npoints=1 << 13)
+        fig = {"id": sid, "design_samplerate_hz": shaper.design_samplerate_hz, **fig, "description": shaper.description}
+        rows.append(fig)
+    if args.json:
+        print(json.dumps([{k: _json_safe(v) for k, v in r.items()} for r in rows], indent=2))
+        return 0
+    header = (
+        f"{'id':<16} {'taps':>4} {'design':>7} {'DC dB':>7} {'Nyq dB':>7} {'min dB':>7} {'at Hz':>7} "
+        f"{'noise dB':>8} {'logmean':>7} {'minph':>5} {'TPDF LSB':>8}"
+    )
+    print(header)
+    for r in rows:
+        rate = f"{r['design_samplerate_hz'] / 1000:g}k" if r["design_samplerate_hz"] else "any"
+        print(
+            f"{r['id']:<16} {r['taps']:>4} {rate:>7} {r['dc_gain_db']:>7.1f} {r['nyquist_gain_db']:>7.1f} "
+            f"{r['min_gain_db']:>7.1f} {r['min_gain_hz']:>7.0f} {r['noise_gain_db']:>8.2f} {r['log_mean_db']:>7.3f} "
+            f"{'yes' if r['minimum_phase'] else 'no':>5} {r['headroom_tpdf_lsb']:>8.2f}"
+        )
+    return 0
+
+
+def run_design(args):
+    """Design a shaper; print its figures and optionally save it."""
+    weighting = args.weighting
+    table = None
+    if args.table:
+        weighting = "table"
+        table = D.read_weighting_table(args.table)
+    elif weighting == "table":
+        raise RtstageError("--weighting table needs --table FILE")
+    design = D.design_shaper(
+        args.samplerate,
+        args.taps,
+        weighting,
+        table=table,
+        range_db=args.range_db,
+        max_gain_db=args.max_gain_db,
+        max_noise_gain_db=args.max_noise_gain_db,
+        audible_limit_hz=args.audible_limit_hz,
+        shaper_id=args.shaper_id,
+    )
+    if design.range_db < design.requested_range_db:
+        _log(f"caps met by narrowing the weighting range from {design.requested_range_db:g} to {design.range_db:.2f} dB")
+    if args.save:
+        D.save_design(design, args.save)
+        _log(f"saved shaper '{design.shaper.id}' to {args.save}")
+    out = {
+        "id": design.shaper.id,
+        "samplerate_hz": design.samplerate,
+        "weighting": design.weighting,
+        "range_db": design.range_db,
+        "coefs": list(design.shaper.coefs),
+        **{k: _json_safe(v) for k, v in design.figures.items()},
+    }
+    if args.json:
+        print(json.dumps(out, indent=2))
+        return 0
+    f = design.figures
+    print(f"id                     {design.shaper.id}")
+    print(f"samplerate_hz          {design.samplerate:g}")
+    print(f"weighting              {design.weighting} (range {design.range_db:.2f} dB)")
+    print(f"coefs                  {' '.join(f'{c:.8g}' for c in design.shaper.coefs)}")
+    print(f"max_gain_db            {f['max_gain_db']:.2f} at {f['max_gain_hz']:.0f} Hz")
+    print(f"min_gain_db            {f['min_gain_db']:.2f} at {f['min_gain_hz']:.0f} Hz")
+    print(f"dc/nyquist_gain_db     {f['dc_gain_db']:.2f} / {f['nyquist_gain_db']:.2f}")
+    print(f"noise_gain_db          {f['noise_gain_db']:.2f}")
+    print(f"weighted_noise_gain_db {f['weighted_noise_gain_db']:.2f}")
+    print(f"log_mean_db            {f['log_mean_db']:.4f}")
+    print(f"minimum_phase          {'yes' if f['minimum_phase'] else 'no'}")
+    print(f"headroom_tpdf_lsb      {f['headroom_tpdf_lsb']:.2f}")
+    return 0
+
+
+def run_plot(args):
+    """Print or draw a shaper's NTF curve."""
+    _check_rate(args.samplerate)
+    if not 8 <= args.points <= 1 << 16:
+        raise RtstageError(f"--points must be between 8 and 65536, got {args.points}")
+    shaper = get_shaper(args.shaper)
+    freqs, gain = D.ntf_curve(shaper, args.samplerate, args.points)
+    rate = float(freqs[-1] * 2.0)
+    gain = [max(float(g), -300.0) for g in gain]
+    if args.png:
+        _draw_png(shaper, freqs, gain, rate, args.png)
+        _log(f"wrote {args.png}")
+        return 0
+    if args.json:
+        print(json.dumps({"id": shaper.id, "samplerate_hz": rate, "freqs_hz": [float(f) for f in freqs], "gain_db": gain}))
+        return 0
+    print(f"# NTF of {shaper.id} at {rate:g} Hz: frequency_hz gain_db")
+    for f, g in zip(freqs, gain):
+        print(f"{f:.3f} {g:.4f}")
+    return 0
+
+
+def _draw_png(shaper, freqs, gain, rate, path):
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise RtstageError("--png needs matplotlib (install the 'plot' extra); without it use --json or the text output") from None
+    fig, ax = plt.subplots(figsize=(8, 4.5))
+    try:
+        ax.plot(freqs / 1000.0, gain, lw=1.5)
+        ax.axhline(0.0, color="0.5", lw=0.8)
+        if rate / 2 > D.AUDIBLE_LIMIT_HZ:
+            ax.axvline(D.AUDIBLE_LIMIT_HZ / 1000.0, color="0.5", lw=0.8, ls="--")
+        ax.set_xlim(0, rate / 2000.0)
+        ax.set_ylim(max(min(gain), -80.0) - 3.0, max(gain) + 3.0)
+        ax.set_xlabel("frequency (kHz)")
+        ax.set_ylabel("|NTF| (dB)")
+        ax.set_title(f"{shaper.id}: noise transfer function at {rate / 1000:g} kHz")
+        ax.grid(True, alpha=0.3)
+        try:
+            fig.savefig(path, dpi=100)
+        except OSError as exc:
+            raise RtstageError(f"cannot write {path}: {exc.strerror}") from None
+    finally:
+        plt.close(fig)
