@@ -1,0 +1,264 @@
+"""Timed parameter changes: the automation file, its writer and its player.
+
+File format (JSON lines, UTF-8)
+-------------------------------
+One JSON object per line; blank lines and lines starting with ``#`` are
+ignored.  An optional first object is the header::
+
+    {"rtstage_automation": 1, "samplerate": 48000}
+
+Every other line is one change, at a sample index or at a time in seconds::
+
+    {"at_frame": 96000, "values": {"bits": 12}}
+    {"at_s": 2.5, "values": {"dither": "rpdf", "gain_db": -3.0}}
+
+``at_s`` is converted to ``round(at_s * samplerate)`` with the render's
+sample rate.  Changes are applied in file order; several changes at the same
+frame are merged, later ones winning.  A change takes effect at the start of
+the frame it names: the renderer splits its blocks there, so the words are
+those of a live run that applied the change at a block boundary at that
+frame (the kernel's output does not depend on how a signal is split).
+
+The live engine writes the changes it applied with :class:`AutomationWriter`
+(``--automation-log FILE``), always as ``at_frame``, so the session can be
+rendered again offline, bit for bit, with :func:`load_automation` and
+:class:`AutomationPlayer`.
+"""
+
+import json
+import math
+
+import numpy as np
+
+from .. import params
+from ..errors import RtstageError
+
+FORMAT_VERSION = 1
+"""Value of the header's ``rtstage_automation`` key."""
+
+
+def _parse_line(text, where):
+    try:
+        obj = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise RtstageError(f"{where}: not valid JSON ({exc.msg})") from None
+    if not isinstance(obj, dict):
+        raise RtstageError(f"{where}: expected a JSON object")
+    return obj
+
+
+def load_automation(path, samplerate=None):
+    """Read an automation file.
+
+    Parameters
+    ----------
+    path : str
+        File to read.
+    samplerate : int or None
+        Sample rate of the render, in Hz: converts ``at_s`` and must agree with
+        the header's ``samplerate`` when the file has one.  None: the header's.
+
+    Returns
+    -------
+    list of (int, dict)
+        ``(frame, values)`` in the order they apply (sorted by frame, stable),
+        values in canonical form.
+
+    Raises
+    ------
+    RtstageError
+        Unreadable file, malformed line, unknown parameter, bad value or a
+        sample rate that disagrees, naming the line.
+    """
+    try:
+        with open(path, encoding="utf-8") as f:
+            lines = f.readlines()
+    except OSError as exc:
+        raise RtstageError(f"cannot read automation file {path}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise RtstageError(f"automation file {path}: not UTF-8 text") from None
+    header_rate = None
+    events = []
+    first = True
+    for lineno, line in enumerate(lines, 1):
+        text = line.strip()
+        if not text or text.startswith("#"):
+            continue
+        where = f"automation file {path}, line {lineno}"
+        obj = _parse_line(text, where)
+        if first and "rtstage_automation" in obj:
+            first = False
+            if obj["rtstage_automation"] != FORMAT_VERSION:
+                raise RtstageError(f"{where}: format version {obj['rtstage_automation']!r} is not {FORMAT_VERSION}")
+            header_rate = obj.get("samplerate")
+            if header_rate is not None and (isinstance(header_rate, bool) or not isinstance(header_rate, int) or header_rate <= 0):
+                raise RtstageError(f"{where}: samplerate must be a positive integer")
+            if samplerate is not None and header_rate is not None and header_rate != samplerate:
+                raise RtstageError(
+                    f"{where}: written at {header_rate} Hz, but the render runs at {samplerate} Hz"
+                )
+            continue
+        first = False
+        extra = set(obj) - {"at_frame", "at_s", "values"}
+        if extra:
+            raise RtstageError(f"{where}: unknown key(s) {', '.join(sorted(extra))}")
+        if ("at_frame" in obj) == ("at_s" in obj):
+            raise RtstageError(f"{where}: give exactly one of at_frame and at_s")
+        if "at_frame" in obj:
+            frame = obj["at_frame"]
+            if isinstance(frame, bool) or not isinstance(frame, int) or frame < 0:
+                raise RtstageError(f"{where}: at_frame must be a non-negative integer")
+        else:
+            at_s = obj["at_s"]
+            if isinstance(at_s, bool) or not isinstance(at_s, (int, float)) or not math.isfinite(at_s) or at_s < 0:
+                raise RtstageError(f"{where}: at_s must be a non-negative number of seconds")
+            rate = samplerate if samplerate is not None else header_rate
+            if rate is None:
+                raise RtstageError(f"{where}: at_s needs a sample rate (none in the header or the render)")
+            frame = int(round(at_s * rate))
+        values = obj.get("values")
+        if not isinstance(values, dict) or not values:
+            raise RtstageError(f"{where}: values must be a non-empty object")
+        try:
+            checked = {name: params.validate(name, value) for name, value in values.items()}
+        except RtstageError as exc:
+            raise RtstageError(f"{where}: {exc}") from None
+        events.append((frame, checked))
+    events.sort(key=lambda e: e[0])
+    return events
+
+
+class AutomationWriter:
+    """Append applied changes to an automation file, one flushed line each.
+
+    Parameters
+    ----------
+    path : str
+        File to create (truncated if it exists).
+    samplerate : int
+        Sample rate of the session in Hz, written in the header.
+
+    Notes
+    -----
+    Writing is file I/O: call :meth:`write` from a control or housekeeping
+    thread, never from the audio callback.
+    """
+
+    def __init__(self, path, samplerate):
+        self.path = path
+        self.samplerate = int(samplerate)
+        try:
+            self._file = open(path, "w", encoding="utf-8")
+        except OSError as exc:
+            raise RtstageError(f"cannot write automation log {path}: {exc.strerror}") from None
+        self._file.write(json.dumps({"rtstage_automation": FORMAT_VERSION, "samplerate": self.samplerate}) + "\n")
+        self._file.flush()
+
+    def write(self, frame, values):
+        """Record that ``values`` took effect at sample index ``frame``."""
+        self._file.write(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")) + "\n")
+        self._file.flush()
+
+    def close(self):
+        """Flush and close the file."""
+        if not self._file.closed:
+            self._file.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class AutomationPlayer:
+    """Hand out timed changes block by block.
+
+    Parameters
+    ----------
+    events : list of (int, dict)
+        As returned by :func:`load_automation`.
+
+    Examples
+    --------
+    Render a block ``x`` starting at ``engine.frame``::
+
+        for offset, nframes, values in player.segments(engine.frame, len(x)):
+            if values:
+                engine.apply(params.settings_with(engine.settings, values))
+            engine.process(x[offset:offset + nframes], out=y[offset:offset + nframes])
+
+    :func:`process_with_automation` does exactly this.
+    """
+
+    def __init__(self, events):
+        self.events = sorted(events, key=lambda e: e[0])
+        self._next = 0
+
+    @property
+    def pending(self):
+        """Number of changes not handed out yet."""
+        return len(self.events) - self._next
+
+    def segments(self, start_frame, nframes):
+        """Split ``nframes`` frames from ``start_frame`` at the frames where changes apply.
+
+        Returns
+        -------
+        list of (int, int, dict or None)
+            ``(offset, nframes, values)``: apply ``values`` (merged changes due
+            at that frame, or None), then process the frames.  Changes due
+            before ``start_frame`` are applied at the first segment.
+        """
+        out = []
+        offset = 0
+        end = start_frame + nframes
+        while True:
+            due = {}
+            while self._next < len(self.events) and self.events[self._next][0] <= start_frame + offset:
+                due.update(self.events[self._next][1])
+                self._next += 1
+            if self._next < len(self.events) and self.events[self._next][0] < end:
+                stop = self.events[self._next][0] - start_frame
+            else:
+                stop = nframes
+            if stop > offset or due:
+                out.append((offset, stop - offset, due or None))
+            offset = stop
+            if offset >= nframes:
+                return out
+
+
+def process_with_automation(engine, x, player, out=None):
+    """Process one block through ``engine``, applying the player's changes on time.
+
+    Parameters
+    ----------
+    engine : rtstage.engine.Engine
+        Engine positioned at the block's first frame (``engine.frame``).
+    x : ndarray, shape (frames, nchannels)
+        Input block.
+    player : AutomationPlayer
+        Changes to apply.
+    out : ndarray or None
+        Output array to fill; None allocates one.
+
+    Returns
+    -------
+    ndarray
+        The output words.
+
+    Notes
+    -----
+    Only the engine fields (``bits``, ``dither``, ``shaper``, ``gain_db``,
+    ``dither_scale``) change the offline engine's words today; the others are
+    carried for the live engine's monitor and mute stages.
+    """
+    x = np.asarray(x)
+    if out is None:
+        out = np.empty(x.shape, dtype=engine.dtype)
+    for offset, nframes, values in player.segments(engine.frame, len(x)):
+        if values:
+            engine.apply(params.settings_with(engine.settings, values))
+        engine.process(x[offset : offset + nframes], out=out[offset : offset + nframes])
+    return out

@@ -1,0 +1,327 @@
+"""What the control layer drives: the :class:`ControlTarget` interface.
+
+The socket server and the MIDI input never touch an engine directly.  They
+validate a change with :func:`rtstage.params.validate_values` against
+``target.get()``, then hand it to ``target.set``.  Anything that provides the
+five methods below can be controlled: the live engine (``rtstage.live``) and,
+here, :class:`EngineTarget`, an in-process target over the offline
+:class:`rtstage.engine.Engine`, driven block by block by the caller or by a
+:class:`BlockDriver` thread.
+
+The contract a target must keep
+-------------------------------
+``get() -> dict``
+    Current value of every parameter in :data:`rtstage.params.PARAMS` (the
+    last accepted values, including ones not yet applied).
+``check(values) -> None``
+    Raise :class:`~rtstage.errors.RtstageError` for changes this target
+    cannot take although they are valid in general (for example ``bits``
+    beyond the word container chosen at start).  Called before ``set``.
+``set(values) -> int | None``
+    Apply already validated, canonical changes atomically: all of them take
+    effect together at one block boundary, never half of them.  Returns the
+    sample index at which they took effect when known within
+    ``apply_timeout_s``, else None (they still take effect, at the next block
+    boundary).  Must be safe to call from any non-audio thread, may block for
+    about one block period, and must never make the audio thread wait.
+``status() -> dict``
+    At least ``state`` (``"running"`` or ``"idle"``), ``frame``,
+    ``samplerate``, ``nchannels``, ``blocksize``, ``uptime_s``, ``xruns``,
+    ``cpu_load`` (0..1, share of the block period spent processing),
+    ``seed`` (the seed in use) and ``settings`` (``get()``).
+``meters() -> dict``
+    At least ``frame`` (sample index after the metered block),
+    ``peak_dbfs`` and ``rms_dbfs`` (lists, one per channel, None for digital
+    silence), ``clipped`` and ``nonfinite`` (lists of counts since start).
+
+Targets may also offer ``applied`` (a list of ``(frame, values,
+monotonic_s)`` of applied changes) for benchmarks and tests.
+"""
+
+import math
+import threading
+import time
+
+import numpy as np
+
+from .. import params
+from ..engine import container_bits
+from ..errors import RtstageError
+
+
+class ControlTarget:
+    """The interface the control layer drives (see the module docstring)."""
+
+    def get(self):
+        """Current value of every parameter, by name."""
+        raise NotImplementedError
+
+    def check(self, values):
+        """Raise :class:`RtstageError` for valid changes this target cannot take."""
+
+    def set(self, values):
+        """Apply validated changes atomically; return the sample index they took effect at, or None."""
+        raise NotImplementedError
+
+    def status(self):
+        """Engine status (see the module docstring for the fields)."""
+        raise NotImplementedError
+
+    def meters(self):
+        """Meter snapshot (see the module docstring for the fields)."""
+        raise NotImplementedError
+
+
+def _dbfs(value):
+    return None if value <= 0.0 else round(20.0 * math.log10(value), 3)
+
+
+class EngineTarget(ControlTarget):
+    """In-process target over an offline :class:`rtstage.engine.Engine`.
+
+    Parameters
+    ----------
+    engine : rtstage.engine.Engine
+        The engine to drive.  Only :meth:`process` may run it afterwards.
+    blocksize : int
+        Block size the driver uses, in frames (reported in status).
+    automation_log : rtstage.control.automation.AutomationWriter or None
+        Receives every applied change with its sample index.
+    apply_timeout_s : float
+        How long :meth:`set` waits for the next block boundary while running.
+
+    Notes
+    -----
+    Changes are queued by :meth:`set` and applied by :meth:`process` before
+    the block it is given, so they take effect at a block boundary, all
+    together.  While no driver runs (``running`` false) :meth:`set` applies
+    them at once, at the engine's current frame.  Parameters the kernel does
+    not implement yet (``monitor``, ``error_gain_db``, ``mute``,
+    ``auto_mute``, ``auto_mute_hold_s``) are kept, logged and reported, but do
+    not change the words.
+    """
+
+    def __init__(self, engine, blocksize=256, automation_log=None, apply_timeout_s=0.5):
+        self.engine = engine
+        self.blocksize = int(blocksize)
+        self.automation_log = automation_log
+        self.apply_timeout_s = float(apply_timeout_s)
+        self.applied = []
+        self.running = False
+        self.xruns = 0
+        self.cpu_load = 0.0
+        self._values = params.defaults()
+        self._values.update(params.values_from_settings(engine.settings))
+        self._start_seed = engine.settings.seed
+        self._pending = {}
+        self._seq = 0
+        self._applied_seq = 0
+        self._applied_frame = {}
+        self._lock = threading.Lock()
+        self._cond = threading.Condition(self._lock)
+        self._engine_lock = threading.Lock()
+        self._t0 = time.monotonic()
+        self._meters = self._meter_frame(None)
+
+    # -- ControlTarget ------------------------------------------------------------------------
+    def get(self):
+        with self._lock:
+            return dict(self._values)
+
+    def check(self, values):
+        bits = values.get("bits")
+        if bits is not None and container_bits(bits) > self.engine.container:
+            raise RtstageError(f"bits={bits} does not fit this engine's {self.engine.container}-bit output")
+
+    def set(self, values):
+        self.check(values)
+        with self._cond:
+            self._values.update(values)
+            self._pending.update(values)
+            self._seq += 1
+            seq = self._seq
+            running = self.running
+        if not running:
+            with self._engine_lock:
+                self._apply_pending()
+        with self._cond:
+            self._cond.wait_for(lambda: self._applied_seq >= seq, timeout=self.apply_timeout_s)
+            for s in range(seq, self._applied_seq + 1):
+                if s in self._applied_frame:
+                    return self._applied_frame[s]
+            return None
+
+    def status(self):
+        with self._lock:
+            settings = dict(self._values)
+        return {
+            "state": "running" if self.running else "idle",
+            "frame": self.engine.frame,
+            "samplerate": self.engine.samplerate,
+            "nchannels": self.engine.nchannels,
+            "blocksize": self.blocksize,
+            "container_bits": self.engine.container,
+            "uptime_s": round(time.monotonic() - self._t0, 3),
+            "xruns": self.xruns,
+            "cpu_load": round(self.cpu_load, 4),
+            "seed": self._start_seed,
+            "settings": settings,
+            "changes_applied": len(self.applied),
+        }
+
+    def meters(self):
+        with self._lock:
+            return dict(self._meters)
+
+    # -- driving ------------------------------------------------------------------------------
+    def _apply_pending(self):
+        """Apply queued changes at the engine's current frame (engine lock held)."""
+        with self._cond:
+            pending, self._pending = self._pending, {}
+            seq = self._seq
+        if pending:
+            frame = self.engine.frame
+            self.engine.apply(params.settings_with(self.engine.settings, pending))
+            self.applied.append((frame, pending, time.monotonic()))
+            if self.automation_log is not None:
+                self.automation_log.write(frame, pending)
+            with self._cond:
+                for s in range(self._applied_seq + 1, seq + 1):
+                    self._applied_frame[s] = frame
+                if len(self._applied_frame) > 1024:
+                    for s in sorted(self._applied_frame)[:-512]:
+                        del self._applied_frame[s]
+        with self._cond:
+            if seq > self._applied_seq:
+                self._applied_seq = seq
+                self._cond.notify_all()
+
+    def process(self, x, out=None):
+        """Apply pending changes, then requantize block ``x``; returns the words."""
+        with self._engine_lock:
+            self._apply_pending()
+            y = self.engine.process(x, out=out)
+        meters = self._meter_frame(y)
+        with self._lock:
+            self._meters = meters
+        return y
+
+    def _meter_frame(self, y):
+        nch = self.engine.nchannels
+        full_scale = float(2 ** (self.engine.container - 1)) if self.engine.container == 16 else float(2**31)
+        if y is None or len(y) == 0:
+            peak = [None] * nch
+            rms = [None] * nch
+        else:
+            yf = y.astype(np.float64) / full_scale
+            peak = [_dbfs(v) for v in np.max(np.abs(yf), axis=0)]
+            rms = [_dbfs(v) for v in np.sqrt(np.mean(yf * yf, axis=0))]
+        return {
+            "frame": self.engine.frame,
+            "peak_dbfs": peak,
+            "rms_dbfs": rms,
+            "clipped": [int(v) for v in self.engine.clipped],
+            "nonfinite": [int(v) for v in self.engine.nonfinite],
+        }
+
+
+def sine_block(frame, nframes, nchannels, samplerate, level_dbfs=-20.0, frequency_hz=997.0):
+    """A deterministic sine block at ``frequency_hz`` (997 Hz, AES17's test frequency) from ``frame``.
+
+    Each channel is offset by a quarter period so channels differ.
+    """
+    n = np.arange(frame, frame + nframes, dtype=np.float64)[:, None]
+    phase = 2.0 * np.pi * frequency_hz * n / samplerate + (np.pi / 2.0) * np.arange(nchannels)[None, :]
+    return (10.0 ** (level_dbfs / 20.0)) * np.sin(phase)
+
+
+class BlockDriver:
+    """A thread that runs an :class:`EngineTarget` in real time, as a stand-in for the live engine.
+
+    Parameters
+    ----------
+    target : EngineTarget
+        Target to drive.
+    nblocks : int or None
+        Blocks to process before stopping; None runs until :meth:`stop`.
+    realtime : bool
+        Pace blocks at the block period (True) or run as fast as possible.
+    source : callable or None
+        ``source(frame, nframes) -> ndarray (nframes, nchannels)``; None: :func:`sine_block`.
+    tap : bool
+        Keep every output block in ``self.tap`` (a list of arrays).
+
+    Notes
+    -----
+    ``xruns`` counts blocks that started more than one block period late;
+    ``cpu_load`` is a moving average of processing time over the block period.
+    """
+
+    def __init__(self, target, nblocks=None, realtime=True, source=None, tap=True):
+        self.target = target
+        self.nblocks = nblocks
+        self.realtime = realtime
+        eng = target.engine
+        self.source = source or (lambda f, n: sine_block(f, n, eng.nchannels, eng.samplerate))
+        self.tap = [] if tap else None
+        self.block_times_s = []
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="rtstage-block-driver", daemon=True)
+        self.error = None
+
+    def start(self):
+        """Start the thread; the target reports ``running`` from now on."""
+        self.target.running = True
+        self._thread.start()
+        return self
+
+    def stop(self):
+        """Stop the thread and wait for it."""
+        self._stop.set()
+        if self._thread.is_alive():
+            self._thread.join()
+        self.target.running = False
+
+    def wait(self, timeout_s=None):
+        """Wait until ``nblocks`` are done; returns True when the thread has ended."""
+        self._thread.join(timeout_s)
+        return not self._thread.is_alive()
+
+    def __enter__(self):
+        return self.start()
+
+    def __exit__(self, *exc):
+        self.stop()
+
+    def _run(self):
+        target = self.target
+        eng = target.engine
+        blocksize = target.blocksize
+        period_s = blocksize / eng.samplerate
+        t_next = time.monotonic()
+        count = 0
+        try:
+            while not self._stop.is_set() and (self.nblocks is None or count < self.nblocks):
+                if self.realtime:
+                    delay = t_next - time.monotonic()
+                    if delay > 0:
+                        time.sleep(delay)
+                    elif -delay > period_s:
+                        target.xruns += 1
+                        t_next = time.monotonic()
+                t_start = time.monotonic()
+                x = self.source(eng.frame, blocksize)
+                y = target.process(x)
+                t_end = time.monotonic()
+                self.block_times_s.append(t_start)
+                if self.tap is not None:
+                    self.tap.append(y)
+                target.cpu_load = 0.9 * target.cpu_load + 0.1 * ((t_end - t_start) / period_s)
+                t_next += period_s
+                count += 1
+        except Exception as exc:  # reported to the test or tool that owns the driver
+            self.error = exc
+        finally:
+            target.running = False
+            with target._cond:
+                target._cond.notify_all()
