@@ -17,6 +17,7 @@ COMMAND_MODULES = (
     "rtstage.cli_render",
     "rtstage.cli_demo",
     "rtstage.cli_shaper",
+    "rtstage.control.cli",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 
