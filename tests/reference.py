@@ -158,7 +158,9 @@ def reference_requantize(x, bits, dither="tpdf", coefs=(), seed=0, gain_db=0.0, 
     dict
         ``q`` (int64 words on the B-bit grid), ``err`` (fed-back error per
         sample, LSB), ``v`` (scaled input, LSB, after replacement of
-        non-finite samples), ``clipped`` and ``nonfinite`` (counts per channel).
+        non-finite samples), ``clipped`` and ``nonfinite`` (counts per channel),
+        ``history`` (shape (channels, N): the error history at the end,
+        ``history[c, k-1] = e[n-k]``, cleared by non-finite samples).
     """
     x = np.asarray(x, dtype=np.float64)
     nframes, nch = x.shape
@@ -174,6 +176,7 @@ def reference_requantize(x, bits, dither="tpdf", coefs=(), seed=0, gain_db=0.0, 
     v_out = np.zeros((nframes, nch), dtype=np.float64)
     clipped = np.zeros(nch, dtype=np.int64)
     nonfinite = np.zeros(nch, dtype=np.int64)
+    final_history = np.zeros((nch, ntaps), dtype=np.float64)
     for c in range(nch):
         words = _Words(seed, c)
         if dither != "none" and nframes:
@@ -206,7 +209,8 @@ def reference_requantize(x, bits, dither="tpdf", coefs=(), seed=0, gain_db=0.0, 
                 history = [e] + history[:-1]
             q_out[n, c] = int(q)
             err_out[n, c] = e
-    return {"q": q_out, "err": err_out, "v": v_out, "clipped": clipped, "nonfinite": nonfinite}
+        final_history[c] = history
+    return {"q": q_out, "err": err_out, "v": v_out, "clipped": clipped, "nonfinite": nonfinite, "history": final_history}
 
 
 def pack_words(q, bits, container=None):
