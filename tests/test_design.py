@@ -343,3 +343,29 @@ class TestFiles:
         bad.write_text("100 -20\n1000\n")
         with pytest.raises(RtstageError, match="line 2"):
             D.read_weighting_table(str(bad))
+
+
+class TestStandardWeightings:
+    """Designs from the IEC 61672-1 A-weighting and ITU-R BS.468-4 curves (rtstage.weighting)."""
+
+    def test_inverse_468_notch_at_the_curve_peak(self):
+        # ITU-R BS.468-4 Table 1: the weighting peaks at +12.2 dB near 6.3 kHz, so the noise is lowest there.
+        d = D.design_shaper(48000, 32, "inv-468")
+        freqs, h = ss.freqz(d.shaper.ntf_b, worN=8192, fs=48000)
+        assert 5000.0 <= freqs[np.argmin(np.abs(h))] <= 8000.0
+        band = (freqs >= 100) & (freqs <= 15000)
+        w_db = D.design_weighting_db("inv-468", freqs[band], D.DEFAULT_RANGE_DB)
+        assert np.corrcoef(20 * np.log10(np.abs(h[band])), w_db)[0, 1] < -0.95  # |NTF|² ~ 1/W (Gerzon & Craven)
+
+    def test_inverse_a_notch_at_the_curve_peak(self):
+        # IEC 61672-1: A-weighting is highest (about +1.3 dB, from memory) between 2 and 3 kHz.
+        d = D.design_shaper(48000, 32, "inv-a")
+        freqs, h = ss.freqz(d.shaper.ntf_b, worN=8192, fs=48000)
+        assert 1500.0 <= freqs[np.argmin(np.abs(h))] <= 3500.0
+        assert np.max(np.abs(np.roots(d.shaper.ntf_b))) < 1.0
+
+    @pytest.mark.parametrize("weighting", ["inv-a", "inv-468", "threshold"])
+    def test_weighted_noise_gain_matches_reference_integral(self, weighting):
+        d = D.design_shaper(44100, 9, weighting)
+        ref = weighted_power_reference(d.shaper.coefs, 44100, lambda f: D.design_weighting_db(weighting, f, D.DEFAULT_RANGE_DB))
+        assert_allclose(d.figures["weighted_noise_gain_db"], 10 * np.log10(ref), atol=0.01)
