@@ -1,0 +1,258 @@
+"""MeterBank: every output-stage meter, fed block by block, read as a report.
+
+The bank takes, for each block, the quantizer's input (after gain, before
+the shaper's feedback and the dither) and the engine's output words for the
+same frames, and keeps only running sums, a Welch segment and filter states:
+a ten-minute file needs no more memory than a one-second one.  Every figure
+depends on the signal alone, never on how it was split into blocks (zero-frame
+blocks included), so the offline report and a meter thread fed by the live
+engine agree.
+
+Examples
+--------
+>>> import numpy as np
+>>> from rtstage import Engine, EngineSettings
+>>> from rtstage.meters import MeterBank
+>>> engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=1), nchannels=1, samplerate=48000)
+>>> bank = MeterBank.for_engine(engine)
+>>> x = 0.5 * np.sin(2 * np.pi * 997 / 48000 * np.arange(48000))[:, None]
+>>> bank.update(x, engine.process(x))
+>>> round(bank.report()["channels"][0]["sample_peak_dbfs"], 1)
+-6.0
+"""
+
+import math
+
+import numpy as np
+
+from ..dither import DITHER_KINDS
+from ..errors import RtstageError
+from .bits import BitActivity
+from .modulation import DEFAULT_MIN_SAMPLES, DEFAULT_NBINS, NoiseModulation
+from .noise import UNWEIGHTED_BAND_HZ, amplitude_to_dbfs, power_to_dbfs, predicted_psd, reading_powers
+from .report import REPORT_VERSION
+from .spectrum import WelchSpectrum, band_powers, fractional_octave_bands
+from .truepeak import OVERSAMPLING, PeakMeter
+
+
+def _db_difference(a, b):
+    return None if a is None or b is None else a - b
+
+
+class MeterBank:
+    """All meters of one output stage.
+
+    Parameters
+    ----------
+    nchannels : int
+        Channel count.
+    samplerate : float
+        Sample rate in Hz.
+    bits : int
+        Word length B of the output (step Q = 2^-(B-1) full scale).
+    shaper_coefs : sequence of float
+        Error-filter taps h_1..h_N of the shaper in use (empty for flat).
+    dither_id : str
+        Dither kind id (``none``, ``rpdf``, ``tpdf``, ``tpdf-hp``, ``gaussian``).
+    dither_scale : float
+        Dither amplitude scale.
+    out_shift : int
+        Left shift from the word to its container (words = q << out_shift);
+        the container is ``bits + out_shift`` bits wide.
+    shaper_id : str or None
+        Shaper name, copied into the report.
+    segment_frames : int or None
+        Welch segment length; None picks one giving at most 6 Hz resolution.
+    modulation_bins, modulation_min_samples : int
+        Noise-modulation estimator settings (see :mod:`rtstage.meters.modulation`).
+    """
+
+    def __init__(
+        self,
+        nchannels,
+        samplerate,
+        bits,
+        shaper_coefs,
+        dither_id,
+        dither_scale=1.0,
+        out_shift=0,
+        shaper_id=None,
+        segment_frames=None,
+        modulation_bins=DEFAULT_NBINS,
+        modulation_min_samples=DEFAULT_MIN_SAMPLES,
+    ):
+        if dither_id not in DITHER_KINDS:
+            raise RtstageError(f"unknown dither '{dither_id}' (known: {', '.join(DITHER_KINDS)})")
+        if not 2 <= int(bits) <= 24:
+            raise RtstageError(f"bits must be between 2 and 24, got {bits}")
+        self.nchannels = int(nchannels)
+        self.samplerate = float(samplerate)
+        self.bits = int(bits)
+        self.shaper_coefs = tuple(float(h) for h in shaper_coefs)
+        self.shaper_id = shaper_id
+        self.dither_id = dither_id
+        self.dither_scale = float(dither_scale)
+        self.out_shift = int(out_shift)
+        self.container_bits = self.bits + self.out_shift
+        self._lsb_per_fs = math.ldexp(1.0, self.bits - 1)
+        self._step = 1.0 / self._lsb_per_fs
+        self._q_hi = self._lsb_per_fs - 1.0
+        self._q_lo = -self._lsb_per_fs
+
+        self._spectrum = WelchSpectrum(self.nchannels, self.samplerate, segment_frames)
+        self._modulation = NoiseModulation(self.nchannels, modulation_bins, modulation_min_samples)
+        self._in_peaks = PeakMeter(self.nchannels)
+        self._out_peaks = PeakMeter(self.nchannels)
+        self._bits = BitActivity(self.nchannels, self.container_bits)
+        self._clipped = np.zeros(self.nchannels, dtype=np.int64)
+        self._nonfinite = np.zeros(self.nchannels, dtype=np.int64)
+        self._engine_counts = None
+        self.frames = 0
+
+        # Theory is fixed by the settings: evaluate it once, on the measurement grid.
+        freqs = self._spectrum.freqs_hz
+        self._predicted_psd = predicted_psd(
+            freqs, self.samplerate, self.bits, self.shaper_coefs, self.dither_id, self.dither_scale
+        )
+        self._predicted = {k: power_to_dbfs(p) for k, p in reading_powers(self._predicted_psd, freqs, self.samplerate).items()}
+        self.band_centres_hz, self._band_edges_hz = fractional_octave_bands(self.samplerate)
+        self._band_bins = band_powers(np.ones(freqs.size), freqs, self._band_edges_hz) / (freqs[1] - freqs[0])
+        self._predicted_bands = band_powers(self._predicted_psd, freqs, self._band_edges_hz)
+
+    @classmethod
+    def for_engine(cls, engine, **kwargs):
+        """A bank configured from an :class:`rtstage.Engine`'s settings and layout."""
+        s = engine.settings
+        return cls(
+            engine.nchannels,
+            engine.samplerate,
+            s.bits,
+            s.shaper.coefs,
+            s.dither,
+            s.dither_scale,
+            engine.out_shift,
+            shaper_id=s.shaper.id,
+            **kwargs,
+        )
+
+    def update(self, x_quantizer_in, words):
+        """Measure one block.
+
+        Parameters
+        ----------
+        x_quantizer_in : ndarray, shape (frames, nchannels), float
+            Input as it enters the quantizer, in full-scale units (after
+            gain; before the shaper's feedback and the dither).
+        words : ndarray, shape (frames, nchannels), int16 or int32
+            The engine's output words for the same frames, ``q << out_shift``.
+
+        Notes
+        -----
+        A non-finite input sample is counted and, as the kernel does, read as
+        0 (NaN) or ±1.0 (±Inf) for the input peaks; its added noise is taken
+        as 0 and it is left out of the noise-modulation bins.  Samples whose
+        word sits at either end of the range are left out of those bins too.
+        """
+        x = np.asarray(x_quantizer_in, dtype=np.float64)
+        words = np.asarray(words)
+        if x.ndim != 2 or x.shape[1] != self.nchannels or words.shape != x.shape:
+            raise RtstageError(
+                f"meter block: expected input and words of shape (frames, {self.nchannels}), got {x.shape} and {words.shape}"
+            )
+        if not np.issubdtype(words.dtype, np.integer):
+            raise RtstageError(f"meter block: words must be integers, got {words.dtype}")
+        finite = np.isfinite(x)
+        if not finite.all():
+            self._nonfinite += (~finite).sum(axis=0)
+            x = np.where(finite, x, np.where(np.isnan(x), 0.0, np.copysign(1.0, x)))
+        q = words.astype(np.int64) >> self.out_shift
+        v = x * self._lsb_per_fs
+        e = q - v
+        e[~finite] = 0.0
+        at_rail = (q >= self._q_hi) | (q <= self._q_lo)
+        beyond = (v >= self._q_hi + 0.5) | (v < self._q_lo - 0.5)
+        self._clipped += (at_rail & beyond & finite).sum(axis=0)
+
+        self._spectrum.update(e * self._step)
+        self._modulation.update(v, e, finite & ~at_rail)
+        self._in_peaks.update(x)
+        self._out_peaks.update(q * self._step)
+        self._bits.update(words)
+        self.frames += x.shape[0]
+
+    def set_engine_counts(self, clipped, nonfinite):
+        """Report the engine's own clipped and non-finite counts (cumulative, per channel) instead of the bank's.
+
+        The bank counts a sample as clipped when its word is at either end of
+        the range and its input lies more than half a step beyond it; that is
+        the kernel's rule without dither and shaping.  The engine's counters
+        (``engine.clipped``, ``engine.nonfinite``) are exact in every case.
+        """
+        self._engine_counts = (np.asarray(clipped, dtype=np.int64).copy(), np.asarray(nonfinite, dtype=np.int64).copy())
+
+    def report(self):
+        """The report as plain data (see docs/meters.md for every key)."""
+        freqs = self._spectrum.freqs_hz
+        psd = self._spectrum.psd()
+        measured = reading_powers(psd, freqs, self.samplerate)
+        bands = band_powers(psd, freqs, self._band_edges_hz)
+        modulation = self._modulation.reading_db()
+        bins_used = self._modulation.bins_used()
+        in_sample, in_true = self._in_peaks.sample_peak, self._in_peaks.true_peak
+        out_sample, out_true = self._out_peaks.sample_peak, self._out_peaks.true_peak
+        active = self._bits.active_bits()
+        effective = self._bits.effective_bits()
+        pattern = self._bits.pattern()
+        clipped, nonfinite = self._engine_counts if self._engine_counts is not None else (self._clipped, self._nonfinite)
+
+        channels = []
+        for c in range(self.nchannels):
+            added = {k: (power_to_dbfs(p[c]) if self.frames else None) for k, p in measured.items()}
+            channels.append(
+                {
+                    "added_noise_dbfs": added,
+                    "predicted_noise_dbfs": dict(self._predicted),
+                    "noise_difference_db": {k: _db_difference(added[k], self._predicted[k]) for k in added},
+                    "noise_modulation_db": modulation[c],
+                    "noise_modulation_bins_used": int(bins_used[c]),
+                    "sample_peak_dbfs": amplitude_to_dbfs(out_sample[c]),
+                    "true_peak_dbtp": amplitude_to_dbfs(out_true[c]),
+                    "input_sample_peak_dbfs": amplitude_to_dbfs(in_sample[c]),
+                    "input_true_peak_dbtp": amplitude_to_dbfs(in_true[c]),
+                    "clipped_samples": int(clipped[c]),
+                    "nonfinite_samples": int(nonfinite[c]),
+                    "active_bits": int(active[c]),
+                    "effective_bits": int(effective[c]),
+                    "bit_pattern": pattern[c],
+                    "error_spectrum_dbfs": [
+                        power_to_dbfs(p) if n >= 1 and self.frames else None for p, n in zip(bands[c], self._band_bins)
+                    ],
+                }
+            )
+        return {
+            "report_version": REPORT_VERSION,
+            "samplerate": self.samplerate,
+            "bits": self.bits,
+            "container_bits": self.container_bits,
+            "out_shift": self.out_shift,
+            "dither": self.dither_id,
+            "dither_scale": self.dither_scale,
+            "shaper": self.shaper_id,
+            "shaper_coefs": list(self.shaper_coefs),
+            "frames": self.frames,
+            "duration_s": self.frames / self.samplerate,
+            "noise_detector": "rms",
+            "unweighted_band_hz": [UNWEIGHTED_BAND_HZ[0], min(UNWEIGHTED_BAND_HZ[1], self.samplerate / 2.0)],
+            "weighted_band_hz": [0.0, self.samplerate / 2.0],
+            "true_peak_oversampling": OVERSAMPLING,
+            "spectrum": {
+                "window": "hann",
+                "segment_frames": self._spectrum.segment_frames,
+                "overlap": 0.5,
+                "segments": self._spectrum.nsegments,
+            },
+            "noise_modulation": {"bins": self._modulation.nbins, "min_samples_per_bin": self._modulation.min_samples},
+            "error_spectrum_bands_hz": [float(f) for f in self.band_centres_hz],
+            "predicted_spectrum_dbfs": [power_to_dbfs(p) if n >= 1 else None for p, n in zip(self._predicted_bands, self._band_bins)],
+            "channels": channels,
+        }
