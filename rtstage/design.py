@@ -12,9 +12,10 @@ weighted_noise_gain_db
 shaper_figures, ntf_curve
     Gains at DC and Nyquist, the deepest notch, noise-power gain, log-mean,
     minimum phase, headroom; the NTF curve itself.
-headroom_lsb, headroom_dbfs
-    The worst-case excursion the shaped error adds, and the programme peak
-    that leaves room for it (the one authority the engine and meter use).
+headroom_lsb, headroom_dbfs, headroom_warning
+    The worst-case excursion the shaped error adds, the programme peak that
+    leaves room for it, and the warning when a peak exceeds that (the one
+    authority the engine and meter use).
 rate_warning, preset_for_rate
     What to tell an engineer running a shaper at a rate it was not designed for.
 design_to_toml, save_design
@@ -451,8 +452,9 @@ def design_shaper(
         Error-filter taps, 1..32.
     weighting : str
         One of :data:`WEIGHTINGS` (see the module notes).
-    table : tuple of ndarray or sequence of (Hz, dB), optional
-        The weighting table for ``weighting="table"``.
+    table : (freqs_hz, gain_db), optional
+        The weighting table for ``weighting="table"``: two equal-length
+        sequences, as :func:`read_weighting_table` returns.
     range_db : float
         Dynamic range of the weighting below its in-band peak, 0..120 dB.
     max_gain_db : float, optional
@@ -499,7 +501,13 @@ def design_shaper(
     if weighting == "table":
         if table is None:
             raise RtstageError("weighting 'table' needs a table of (Hz, dB) rows (--table FILE)")
-        table = check_weighting_table(list(zip(*table)) if len(table) == 2 and np.ndim(table[0]) == 1 else table)
+        try:
+            table_hz, table_db = (np.asarray(v, dtype=np.float64) for v in table)
+        except (TypeError, ValueError):
+            raise RtstageError("weighting table must be a pair (freqs_hz, gain_db) of equal-length sequences") from None
+        if table_hz.ndim != 1 or table_hz.shape != table_db.shape:
+            raise RtstageError("weighting table must be a pair (freqs_hz, gain_db) of equal-length sequences")
+        table = check_weighting_table(np.column_stack((table_hz, table_db)))
     if not (math.isfinite(range_db) and 0.0 <= range_db <= 120.0):
         raise RtstageError(f"weighting range must be between 0 and 120 dB, got {range_db}")
     for name, cap in (("maximum NTF gain", max_gain_db), ("total noise gain", max_noise_gain_db)):
@@ -714,6 +722,44 @@ def headroom_dbfs(shaper, dither_id, bits, dither_scale=1.0):
     return 20.0 * math.log10(room) if room > 0.0 else float("-inf")
 
 
+def headroom_warning(shaper, dither_id, bits, peak_dbfs, dither_scale=1.0):
+    """A warning when a programme peak leaves less room than the shaped error needs, else None.
+
+    Parameters
+    ----------
+    shaper : Shaper
+        The shaper.
+    dither_id : str or DitherKind
+        Dither kind id.
+    bits : int
+        Target word length.
+    peak_dbfs : float
+        The programme's peak after the engine's gain, dBFS.
+    dither_scale : float
+        Dither amplitude relative to the textbook amplitude.
+
+    Returns
+    -------
+    str or None
+        One line naming the peak, the limit from :func:`headroom_dbfs` and the
+        excursion from :func:`headroom_lsb`; None when the peak is at or below the limit.
+    """
+    limit = headroom_dbfs(shaper, dither_id, bits, dither_scale)
+    if peak_dbfs <= limit:
+        return None
+    excursion = headroom_lsb(shaper, dither_id, dither_scale)
+    if limit == float("-inf"):
+        return (
+            f"shaper '{shaper.id}' with {_dither_kind(dither_id).id} dither can add {excursion:.1f} LSB, more than a "
+            f"{bits}-bit word holds: any programme may clip; use a gentler shaper or a longer word"
+        )
+    return (
+        f"programme peak {peak_dbfs:.2f} dBFS leaves less headroom than shaper '{shaper.id}' with "
+        f"{_dither_kind(dither_id).id} dither needs ({excursion:.1f} LSB at {bits} bits): keep peaks at or below "
+        f"{limit:.2f} dBFS (lower the gain) or expect clipped samples"
+    )
+
+
 # ----------------------------------------------------------------------------- rate check
 
 _ID_PATTERN = re.compile(r"^([a-z]+[a-z0-9]*?)(\d+)-(\d+)k(\d?)$")
@@ -808,6 +854,25 @@ def _toml_value(value):
     raise TypeError(f"cannot write {type(value).__name__} to TOML")
 
 
+def design_command(design):
+    """The ``rtstage shaper design`` command line that reproduces ``design``."""
+    parts = [
+        "rtstage shaper design",
+        f"--samplerate {design.samplerate:g}",
+        f"--taps {design.shaper.ntaps}",
+        "--table FILE" if design.weighting == "table" else f"--weighting {design.weighting}",
+        f"--range-db {design.requested_range_db:g}",
+    ]
+    if design.max_gain_db is not None:
+        parts.append(f"--max-gain-db {design.max_gain_db:g}")
+    if design.max_noise_gain_db is not None:
+        parts.append(f"--max-noise-gain-db {design.max_noise_gain_db:g}")
+    if design.audible_limit_hz != AUDIBLE_LIMIT_HZ:
+        parts.append(f"--audible-limit-hz {design.audible_limit_hz:g}")
+    parts.append(f"--id {design.shaper.id}")
+    return " ".join(parts)
+
+
 def design_to_toml(design):
     """A design as a shaper preset file (TOML text) for :func:`rtstage.shapers.shaper_from_toml`.
 
@@ -819,6 +884,7 @@ def design_to_toml(design):
     lines = [
         "# Noise shaper designed by 'rtstage shaper design'.",
         "# NTF(z) = 1 - sum_k coefs[k-1] z^-k (sign convention of rtstage.shapers).",
+        f"# Made with: {design_command(design)}",
         f"id = {_toml_value(s.id)}",
         f"description = {_toml_value(s.description)}",
         f"source = {_toml_value(s.source)}",

@@ -369,3 +369,17 @@ class TestStandardWeightings:
         d = D.design_shaper(44100, 9, weighting)
         ref = weighted_power_reference(d.shaper.coefs, 44100, lambda f: D.design_weighting_db(weighting, f, D.DEFAULT_RANGE_DB))
         assert_allclose(d.figures["weighted_noise_gain_db"], 10 * np.log10(ref), atol=0.01)
+
+
+class TestHeadroomWarning:
+    def test_warns_only_above_the_limit(self):
+        # The limit comes from the TPDF error bound (Lipshitz, Wannamaker & Vanderkooy, JAES 1992).
+        limit = D.headroom_dbfs(F9, "tpdf", 16)
+        assert D.headroom_warning(F9, "tpdf", 16, limit - 0.001) is None
+        message = D.headroom_warning(F9, "tpdf", 16, -0.001)
+        assert message is not None and f"{limit:.2f}" in message
+        assert "any programme may clip" in D.headroom_warning(F9, "tpdf", 2, -40.0)
+
+    def test_table_must_be_a_pair_of_sequences(self):
+        with pytest.raises(RtstageError, match="pair"):
+            D.design_shaper(48000, 9, "table", table=([100.0, 1000.0, 4000.0], [0.0, 1.0]))
