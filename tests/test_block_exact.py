@@ -157,3 +157,29 @@ class TestAgainstReference:
         ntaps = BUILTIN_SHAPERS[shaper].ntaps
         for k in range(1, ntaps + 1):
             assert_array_equal(engine.state.hist[:, (hpos - k) % engine.state.hist.shape[1]], r["history"][:, k - 1])
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    dither=st.sampled_from(DITHERS),
+    shaper=st.sampled_from(SHAPERS),
+    nchannels=st.sampled_from((1, 2, 4)),
+    bits=st.integers(2, 24),
+    signal_seed=st.integers(0, 2**32 - 1),
+    dither_seed=st.integers(0, 2**64 - 1),
+    start_frame=st.integers(0, 2**62),
+    dither_scale=st.sampled_from((0.5, 1.0, 2.0)),
+)
+def test_random_cases_equal_reference(dither, shaper, nchannels, bits, signal_seed, dither_seed, start_frame, dither_scale):
+    # Same comparison as TestAgainstReference (same arithmetic order, bit for bit) over random
+    # settings, start frames up to 2^62 and amplitude scales.
+    x = _signal(signal_seed, 80, nchannels)
+    s = EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, force=True)
+    engine = Engine(s, nchannels, 48000, start_frame=start_frame)
+    y = engine.process(x)
+    r = ref.reference_requantize(
+        x, bits, dither, BUILTIN_SHAPERS[shaper].coefs, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, start_frame=start_frame
+    )
+    assert_array_equal(y, ref.pack_words(r["q"], bits))
+    assert_array_equal(engine.clipped, r["clipped"])
+    assert_array_equal(engine.nonfinite, r["nonfinite"])
