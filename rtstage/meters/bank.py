@@ -152,6 +152,8 @@ class MeterBank:
         0 (NaN) or ±1.0 (±Inf) for the input peaks; its added noise is taken
         as 0 and it is left out of the noise-modulation bins.  Samples whose
         word sits at either end of the range are left out of those bins too.
+        A sample counts as clipped when its word is at either end of the range
+        and its input lies more than half a step beyond it (±Inf included).
         """
         x = np.asarray(x_quantizer_in, dtype=np.float64)
         words = np.asarray(words)
@@ -161,17 +163,20 @@ class MeterBank:
             )
         if not np.issubdtype(words.dtype, np.integer):
             raise RtstageError(f"meter block: words must be integers, got {words.dtype}")
+        q = words.astype(np.int64) >> self.out_shift
+        at_rail = (q >= self._q_hi) | (q <= self._q_lo)
+        with np.errstate(invalid="ignore"):
+            # ±Inf lies beyond the range (the kernel clips it unless the gain is below 1); NaN does not.
+            v = x * self._lsb_per_fs
+            beyond = (v >= self._q_hi + 0.5) | (v < self._q_lo - 0.5)
+        self._clipped += (at_rail & beyond).sum(axis=0)
         finite = np.isfinite(x)
         if not finite.all():
             self._nonfinite += (~finite).sum(axis=0)
             x = np.where(finite, x, np.where(np.isnan(x), 0.0, np.copysign(1.0, x)))
-        q = words.astype(np.int64) >> self.out_shift
-        v = x * self._lsb_per_fs
+            v = x * self._lsb_per_fs
         e = q - v
         e[~finite] = 0.0
-        at_rail = (q >= self._q_hi) | (q <= self._q_lo)
-        beyond = (v >= self._q_hi + 0.5) | (v < self._q_lo - 0.5)
-        self._clipped += (at_rail & beyond & finite).sum(axis=0)
 
         self._spectrum.update(e * self._step)
         self._modulation.update(v, e, finite & ~at_rail)
