@@ -201,12 +201,30 @@ class PlainC:
         )  # fmt: skip
 
 
-def bench_kernel(seconds, reps):
+def load_kernel_module(path):
+    """A kernel module to measure: rtstage's own (None) or a private copy at ``path``.
+
+    A copy must offer ``KernelState`` and ``process_block`` with the layout of
+    :mod:`rtstage.kernel`; it is how a proposed kernel change is measured
+    without touching ``rtstage/`` (keep such copies in ``tools/build/``).
+    """
+    if path is None:
+        return K, "rtstage.kernel"
+    import importlib
+
+    # imported under its own file name, as numba's on-disk cache expects
+    sys.path.insert(0, os.path.dirname(os.path.abspath(path)))
+    module = importlib.import_module(os.path.splitext(os.path.basename(path))[0])
+    return module, os.path.relpath(path, REPO_DIR)
+
+
+def bench_kernel(seconds, reps, kernel_path=None):
     """Kernel against the plain C builds on ``seconds`` of generated stereo audio."""
+    KM, kernel_name = load_kernel_module(kernel_path)
     nframes = int(round(seconds * BENCH_SAMPLERATE))
     nsamples = nframes * BENCH_CHANNELS
     settings = EngineSettings(bits=BENCH_BITS, dither=BENCH_DITHER, shaper=BENCH_SHAPER, seed=BENCH_SEED).resolved()
-    st = K.KernelState(BENCH_CHANNELS)
+    st = KM.KernelState(BENCH_CHANNELS)
     encode_params(settings, BENCH_SAMPLERATE, 16 - BENCH_BITS, st.iparams, st.fparams)
     st.reset(0)
     x = make_programme(nframes, BENCH_SAMPLERATE)
@@ -214,7 +232,7 @@ def bench_kernel(seconds, reps):
 
     def run_kernel():
         st.reset(0)
-        K.process_block(x, y_kernel, nframes, *st.arrays())
+        KM.process_block(x, y_kernel, nframes, *st.arrays())
 
     log(f"kernel: {seconds:g} s of stereo audio ({nsamples} samples), best of {reps}, interleaved")
     t0 = time.perf_counter()
@@ -264,7 +282,8 @@ def bench_kernel(seconds, reps):
         "channels": BENCH_CHANNELS,
         "samples": nsamples,
         "setting": f"{BENCH_BITS} bits, {BENCH_DITHER}, {BENCH_SHAPER}, seed {BENCH_SEED}, float64 in, int16 out",
-        "kernel": {**summary(times["kernel"]), "first_call_s": first_call_s, "clipped": kernel_clipped.tolist()},
+        "kernel": {**summary(times["kernel"]), "module": kernel_name, "first_call_s": first_call_s,
+                   "clipped": kernel_clipped.tolist()},  # fmt: skip
         "c": c_entries,
     }
     result["kernel"]["samples_per_s"] = nsamples / result["kernel"]["best_s"]
@@ -310,21 +329,23 @@ def write_programme_wav(path, seconds, subtype="PCM_24", chunk_frames=1 << 20):
 def pure_io(in_path, out_path, blocksize=65536):
     """The I/O baseline: read ``in_path`` with soundfile, write a 16-bit WAV of the same size.
 
-    The words written are the input's top 16 bits (soundfile's own int16
-    read), so the only work besides reading and writing is libsndfile's
-    conversion.
+    The input is read as float64, as the renderer reads it, in large blocks;
+    each block's frames are written from a preallocated int16 array (the
+    words' values do not change libsndfile's cost of writing PCM_16).  No
+    other work is done, so this is the floor that a render cannot go below.
     """
     import soundfile as sf
 
     with sf.SoundFile(in_path) as src, sf.SoundFile(
         out_path, "w", src.samplerate, src.channels, subtype="PCM_16", format="WAV"
     ) as dst:
-        buf = np.empty((blocksize, src.channels), dtype=np.int16)
+        buf = np.empty((blocksize, src.channels), dtype=np.float64)
+        words = np.zeros((blocksize, src.channels), dtype=np.int16)
         while True:
-            n = src.readinto(buf)
+            n = src.read(out=buf).shape[0]
             if n == 0:
                 break
-            dst.write(buf[:n])
+            dst.write(words[:n])
 
 
 def run_render_subprocess(in_path, out_path, env):
@@ -429,8 +450,35 @@ def bench_warm_start(reps):
     bare_times_s = time_best(
         lambda: subprocess.run([sys.executable, "-c", "pass"], check=True, capture_output=True), reps, warmup=1
     )
+    steps = [startup_steps(env) for _ in range(reps)]
     os.remove(out_path)
-    return {"render": summary(times_s), "imports": summary(import_times_s), "bare_python": summary(bare_times_s)}
+    return {
+        "render": summary(times_s),
+        "imports": summary(import_times_s),
+        "bare_python": summary(bare_times_s),
+        "steps_best_s": {key: min(s[key] for s in steps) for key in steps[0]},
+    }
+
+
+_STARTUP_PROBE = """
+import json, time
+t = [time.perf_counter()]
+import numpy; t.append(time.perf_counter())
+import numba; t.append(time.perf_counter())
+import rtstage.cli, rtstage.render; t.append(time.perf_counter())
+rtstage.cli.build_parser(); t.append(time.perf_counter())
+from rtstage.engine import Engine, EngineSettings
+Engine(EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=1), 2, 48000); t.append(time.perf_counter())
+names = ["import numpy", "import numba", "import rtstage.cli, rtstage.render", "cli.build_parser()", "Engine() (numba cache load)"]
+print(json.dumps({n: b - a for n, a, b in zip(names, t, t[1:])}))
+"""
+
+
+def startup_steps(env):
+    """Seconds spent in each start-up step of a fresh process (cache warm)."""
+    proc = subprocess.run([sys.executable, "-c", _STARTUP_PROBE], cwd=REPO_DIR, env=env, check=True,
+                          capture_output=True, text=True)  # fmt: skip
+    return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
 # --------------------------------------------------------------------------------------
@@ -481,7 +529,7 @@ def print_table(results, out=sys.stdout):
     if kr:
         w(f"1. kernel throughput: {kr['samples']} samples ({kr['frames']} frames x {kr['channels']} ch), {kr['setting']}\n")
         k = kr["kernel"]
-        w(f"   {'rtstage kernel (numba)':34s} {_t(k)}  {k['samples_per_s'] / 1e6:7.1f} Msamples/s\n")
+        w(f"   {'kernel: ' + k['module']:34s} {_t(k)}  {k['samples_per_s'] / 1e6:7.1f} Msamples/s\n")
         for c in kr["c"]:
             w(f"   {'plain C, ' + c['label']:34s} {_t(c)}  {c['samples_per_s'] / 1e6:7.1f} Msamples/s"
               f"  -> kernel {c['kernel_speedup']:.2f}x\n")  # fmt: skip
@@ -507,7 +555,11 @@ def print_table(results, out=sys.stdout):
         w("3. warm start (fresh process, numba cache warm):\n")
         w(f"   {'rtstage render, 1 s file':34s} {_t(wr['render'])}\n")
         w(f"   {'python + rtstage imports only':34s} {_t(wr['imports'])}\n")
-        w(f"   {'bare python':34s} {_t(wr['bare_python'])}\n\n")
+        w(f"   {'bare python':34s} {_t(wr['bare_python'])}\n")
+        w("   start-up steps in a fresh process (best of N each):\n")
+        for name, step_s in wr["steps_best_s"].items():
+            w(f"     {name:40s} {step_s * 1e3:8.1f} ms\n")
+        w("\n")
     w("goals\n")
     for name, measured, goal, ok in goals(results):
         w(f"   {name:38s} {measured:>10s}   goal {goal:28s} {verdict(ok)}\n")
@@ -544,6 +596,7 @@ def main(argv=None):
     parser.add_argument("--kernel-seconds", type=float, default=10.0, help="seconds of audio per kernel run")
     parser.add_argument("--render-minutes", type=float, default=10.0, help="length of the render test file")
     parser.add_argument("--render-reps", type=int, default=3, help="timed repetitions of the render comparison")
+    parser.add_argument("--kernel-from", metavar="PATH", help="measure a private kernel copy (a .py file) instead of rtstage.kernel")
     parser.add_argument("--skip-kernel", action="store_true")
     parser.add_argument("--skip-render", action="store_true")
     parser.add_argument("--skip-warm", action="store_true")
@@ -553,7 +606,7 @@ def main(argv=None):
     os.makedirs(BUILD_DIR, exist_ok=True)
     results = {"machine": machine_info()}
     if not args.skip_kernel:
-        results["kernel"] = bench_kernel(args.kernel_seconds, args.reps)
+        results["kernel"] = bench_kernel(args.kernel_seconds, args.reps, args.kernel_from)
     if not args.skip_render:
         try:
             results["render"] = bench_render(args.render_minutes, args.render_reps)
