@@ -43,6 +43,7 @@ Monitor values
 """
 
 import math
+import os
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -50,7 +51,7 @@ import numpy as np
 from . import engine as _engine
 from .dither import DITHER_KINDS
 from .errors import RtstageError
-from .shapers import all_shapers
+from .shapers import PRESET_SHAPER_DIR, all_shapers
 
 MONITOR_MODES = ("requantized", "error", "input")
 """Values of ``monitor``: what the output carries (see the module docstring)."""
@@ -114,7 +115,7 @@ class ParamSpec:
     def allowed(self):
         """The allowed values of an enum parameter."""
         if self.name == "shaper":
-            return tuple(all_shapers())
+            return _shaper_ids()
         return self.choices
 
     def to_dict(self):
@@ -130,6 +131,23 @@ class ParamSpec:
         if self.kind == "enum":
             d["choices"] = list(self.allowed())
         return d
+
+
+_SHAPER_CACHE = {}
+
+
+def _shaper_ids():
+    """Ids of the built-in and preset shapers, re-read only when the preset directory changes."""
+    try:
+        stamp = os.stat(PRESET_SHAPER_DIR).st_mtime_ns
+    except OSError:
+        stamp = None
+    ids = _SHAPER_CACHE.get(stamp)
+    if ids is None:
+        ids = tuple(all_shapers())
+        _SHAPER_CACHE.clear()
+        _SHAPER_CACHE[stamp] = ids
+    return ids
 
 
 _TABLE = (
