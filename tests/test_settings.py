@@ -148,3 +148,19 @@ class TestChannelsAndRates:
         k = np.arange(ramp_frames)
         linear = 0.5 * (1.0 + (k + 1) * (0.5 - 1.0) / ramp_frames) * 2**15
         assert np.max(np.abs(q[:ramp_frames] - linear)) <= 1.0
+
+
+class TestBlockShape:
+    @pytest.mark.parametrize("shape", ((16,), (16, 3), (16, 2, 1)))
+    def test_wrong_block_shape_refused(self, shape):
+        # Engine.process takes (frames, nchannels); anything else is a user error with a reason.
+        engine = Engine(EngineSettings(seed=1), 2, 48000)
+        with pytest.raises(RtstageError) as info:
+            engine.process(np.zeros(shape))
+        assert "\n" not in str(info.value)
+
+    def test_integer_input_is_converted(self):
+        # Integer arrays are taken as full-scale values (converted to float64): 0 and ±1.
+        engine = Engine(EngineSettings(dither="none", seed=1), 1, 48000)
+        q = engine.process(np.array([[0], [1], [-1]])).astype(np.int64)[:, 0]
+        assert_array_equal(q, [0, 2**15 - 1, -(2**15)])
