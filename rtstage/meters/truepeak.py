@@ -42,35 +42,48 @@ ANNEX2_PHASES = np.array(
 def _peak_update(x, nframes, phases, ring, pos, true_peak, sample_peak):
     """Advance the interpolator over ``x[:nframes]`` and raise the peaks in place.
 
-    ``ring`` (nchannels, 12) holds the last 12 inputs per channel, ``pos[0]``
-    the slot of the newest one, ``pos[1]`` the frames seen so far: a value is
-    interpolated only once the window holds 12 real samples.
+    ``ring`` (nchannels, 24) holds the last 12 inputs per channel twice
+    (slots j and j + 12), so that the window newest-to-oldest is the
+    contiguous run ``ring[c, p + 12 - k]``, k = 0..11, with ``p = pos[0]`` the
+    slot of the newest one; ``pos[1]`` counts the frames seen so far: a value
+    is interpolated only once the window holds 12 real samples.
     """
     nch = ring.shape[0]
-    ntaps = ring.shape[1]
+    ntaps = phases.shape[1]
     nphases = phases.shape[0]
-    p = pos[0]
-    seen = pos[1]
-    for n in range(nframes):
-        p = (p + 1) % ntaps
-        seen += 1
-        for c in range(nch):
+    p0 = pos[0]
+    seen0 = pos[1]
+    for c in range(nch):
+        p = p0
+        seen = seen0
+        tp = true_peak[c]
+        sp = sample_peak[c]
+        for n in range(nframes):
+            p += 1
+            if p == ntaps:
+                p = 0
+            seen += 1
             v = x[n, c]
             ring[c, p] = v
+            ring[c, p + ntaps] = v
             a = abs(v)
-            if a > sample_peak[c]:
-                sample_peak[c] = a
+            if a > sp:
+                sp = a
             if seen < ntaps:
                 continue
+            top = p + ntaps
             for ph in range(nphases):
                 acc = 0.0
                 for k in range(ntaps):
-                    acc += phases[ph, k] * ring[c, (p - k) % ntaps]
+                    acc += phases[ph, k] * ring[c, top - k]
                 acc = abs(acc)
-                if acc > true_peak[c]:
-                    true_peak[c] = acc
-    pos[0] = p
-    pos[1] = seen
+                if acc > tp:
+                    tp = acc
+        true_peak[c] = tp
+        sample_peak[c] = sp
+        if c == nch - 1:
+            pos[0] = p
+            pos[1] = seen
 
 
 class PeakMeter:
@@ -98,7 +111,7 @@ class PeakMeter:
 
     def __init__(self, nchannels):
         self.nchannels = int(nchannels)
-        self._ring = np.zeros((self.nchannels, TAPS_PER_PHASE), dtype=np.float64)
+        self._ring = np.zeros((self.nchannels, 2 * TAPS_PER_PHASE), dtype=np.float64)
         self._pos = np.zeros(2, dtype=np.int64)
         self._true_peak = np.zeros(self.nchannels, dtype=np.float64)
         self._sample_peak = np.zeros(self.nchannels, dtype=np.float64)
