@@ -149,3 +149,34 @@ def test_error_spectrum_follows_predicted_ntf():
     predicted = np.array(report["predicted_spectrum_dbfs"], dtype=float)
     keep = centres >= 1000
     assert np.all(np.abs(measured[keep] - predicted[keep]) < 0.5)
+
+
+def test_render_observer_meters_the_file(tmp_path):
+    # End to end through rtstage.render_file: the observer sees the raw input, applies the
+    # engine's gain, and the report's output peak is that of the written 16-bit file (numpy
+    # reference); 16-bit flat TPDF reads its prediction (LWV 1992, Q²/4) within 0.2 dB.
+    import soundfile as sf
+
+    from rtstage.render import render_file
+
+    n = np.arange(1 << 17)
+    x = np.stack([0.5 * np.sin(2 * np.pi * 997.0 / SAMPLERATE * n)] * 2, axis=1)
+    src, dst = tmp_path / "in.wav", tmp_path / "out.wav"
+    sf.write(src, x, SAMPLERATE, subtype="DOUBLE")
+    settings = EngineSettings(bits=16, dither="tpdf", seed=3, gain_db=-3.0)
+    banks = []
+
+    def observer(block, words, engine):
+        if not banks:
+            banks.append(MeterBank.for_engine(engine))
+        banks[0].observe(block, words, engine)
+
+    engine = render_file(str(src), str(dst), settings, blocksize=1000, observers=(observer,))
+    report = banks[0].report()
+    written, _ = sf.read(dst, dtype="int16", always_2d=True)
+    for c, channel in enumerate(report["channels"]):
+        assert channel["sample_peak_dbfs"] == pytest.approx(20 * np.log10(np.abs(written[:, c].astype(float)).max() / 32768), abs=1e-12)
+        assert channel["input_sample_peak_dbfs"] == pytest.approx(20 * np.log10(0.5) - 3.0, abs=0.01)
+        assert channel["clipped_samples"] == engine.clipped[c] == 0
+        for key, diff in channel["noise_difference_db"].items():
+            assert abs(diff) < 0.2, key

@@ -185,6 +185,21 @@ class MeterBank:
         self._bits.update(words)
         self.frames += x.shape[0]
 
+    def observe(self, x, words, engine):
+        """Render observer: meter a block of the raw input ``x`` as the engine's quantizer sees it.
+
+        Matches ``rtstage.render.render_file``'s ``observers`` signature.  The
+        input is multiplied by the engine's gain (``10^(gain_db/20)``, the
+        factor the kernel applies, in the same order, so the product is the
+        kernel's bit for bit), and the engine's exact clipped and non-finite
+        counters replace the bank's own.  Valid while the gain is not ramping
+        (an offline render never ramps).
+        """
+        gain = 10.0 ** (engine.settings.gain_db / 20.0)
+        with np.errstate(invalid="ignore"):
+            self.update(np.asarray(x, dtype=np.float64) * gain, words)
+        self.set_engine_counts(engine.clipped, engine.nonfinite)
+
     def set_engine_counts(self, clipped, nonfinite):
         """Report the engine's own clipped and non-finite counts (cumulative, per channel) instead of the bank's.
 
