@@ -18,6 +18,7 @@ COMMAND_MODULES = (
     "rtstage.cli_demo",
     "rtstage.cli_shaper",
     "rtstage.control.cli",
+    "rtstage.live.cli",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 

@@ -1,0 +1,298 @@
+"""Preallocated blocks shared by the audio callback and the Python side.
+
+Everything the callback touches is allocated here, before the stream opens,
+and reached through one table of addresses (the callback's userdata):
+
+* the kernel's parameter and state arrays (:class:`rtstage.kernel.KernelState`);
+* the pending parameter block, guarded by a seqlock;
+* the control and counter array ``ctl`` (int64, indices ``C_*``);
+* the source: a preloaded float64 file, or generator parameters and a scratch block;
+* the tap ring: a single-producer single-consumer ring of output words.
+
+Seqlock (parameters, Python → callback)
+---------------------------------------
+The writer (:func:`publish_params`) makes ``ctl[C_PARAM_SEQ]`` odd, copies the
+new iparams/fparams into the pending block, and makes it even again.  At the
+start of a block the callback copies the pending block into scratch only when
+the sequence number is even and new, re-reads it, and if it is unchanged
+copies scratch into the kernel's parameters and records the sample index at
+which they took effect (``ctl[C_APPLIED_FRAME]``, then ``ctl[C_APPLIED_SEQ]``).
+The callback never waits: a torn read is simply retried one block later.
+
+Ring (words, callback → tap writer)
+-----------------------------------
+``ctl[C_RING_HEAD]`` and ``ctl[C_RING_TAIL]`` count frames written and read
+since the start; the slot of frame k is ``k % ring_frames``.  The callback
+writes a block only if it fits whole (otherwise it adds the block's frames to
+``ctl[C_RING_DROPPED]``), then advances the head after a fence; the consumer
+(:func:`ring_read`) copies up to the head and advances the tail after a fence.
+"""
+
+import numpy as np
+from numba import njit
+
+from .. import kernel as K
+from ._ptr import fence
+
+# --- table of addresses (userdata) -----------------------------------------------
+T_KIP, T_KFP, T_HIST, T_COUNTS, T_CLOCK, T_RAMP, T_RNGW, T_RNGP = range(8)
+T_CTL = 8
+T_PIP = 9
+"""Pending iparams (seqlock-guarded)."""
+T_PFP = 10
+T_SIP = 11
+"""Scratch iparams the callback reads the pending block into."""
+T_SFP = 12
+T_SRC = 13
+"""Preloaded file source, float64 (src_frames, nchannels)."""
+T_XBUF = 14
+"""Generator scratch, float64 (max_frames, nchannels)."""
+T_GENW = 15
+"""Generator Philox scratch, uint64 (nchannels, 4)."""
+T_GENF = 16
+"""Generator float parameters: freq_hz, amplitude."""
+T_RING = 17
+"""Tap ring, output dtype (ring_frames, nchannels)."""
+T_LEN = 18
+
+# --- ctl: layout and configuration (written before start) -------------------------
+C_NCH = 0
+C_MAX_FRAMES = 1
+C_IN_MODE = 2
+C_OUT_BITS = 3
+"""Output container: 16 (int16) or 32 (int32)."""
+C_SRC_FRAMES = 4
+C_SRC_LOOP = 5
+C_GEN_KIND = 6
+C_GEN_SEED = 7
+C_SAMPLERATE = 8
+C_RING_FRAMES = 9
+C_TAP_ON = 10
+# --- ctl: written by the callback ---------------------------------------------------
+C_SRC_POS = 16
+"""Next source frame (file position or generator sample index)."""
+C_SRC_DONE = 17
+C_APPLIED_SEQ = 18
+C_APPLIED_FRAME = 19
+C_CALLBACKS = 20
+C_FRAMES = 21
+"""Frames written to the device since the start (source padding included)."""
+C_IN_UNDERFLOW = 22
+C_IN_OVERFLOW = 23
+C_OUT_UNDERFLOW = 24
+C_OUT_OVERFLOW = 25
+C_PRIMING = 26
+C_FLAGGED = 27
+"""Callbacks with at least one status flag set."""
+C_RING_HEAD = 28
+C_RING_DROPPED = 29
+C_LOOPS = 30
+C_CPU_LOAD_PPM = 31
+"""PortAudio's CPU load in millionths, written by the stream worker."""
+C_WORKER_PID = 32
+# --- ctl: written by the Python side -----------------------------------------------
+C_PARAM_SEQ = 40
+C_RING_TAIL = 41
+C_LEN = 48
+
+IN_DEVICE = 0
+"""Input from PortAudio's input buffer (float32)."""
+IN_FILE = 1
+IN_GENERATOR = 2
+
+FLAG_COUNTERS = (
+    ("input_underflow", C_IN_UNDERFLOW),
+    ("input_overflow", C_IN_OVERFLOW),
+    ("output_underflow", C_OUT_UNDERFLOW),
+    ("output_overflow", C_OUT_OVERFLOW),
+    ("priming_output", C_PRIMING),
+    ("flagged_callbacks", C_FLAGGED),
+)
+"""Status-flag counters by name, as reported in :meth:`LiveEngine.status`."""
+
+
+def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames):
+    """(slot, shape, dtype) of every shared array, in table order."""
+    nch = int(nchannels)
+    out_dtype = np.int16 if out_bits == 16 else np.int32
+    spec = [None] * T_LEN
+    spec[T_KIP] = ((K.IP_LEN,), np.int64)
+    spec[T_KFP] = ((K.FP_LEN,), np.float64)
+    spec[T_HIST] = ((nch, K.HIST_LEN), np.float64)
+    spec[T_COUNTS] = ((nch, K.CNT_LEN), np.int64)
+    spec[T_CLOCK] = ((K.CLK_LEN,), np.int64)
+    spec[T_RAMP] = ((K.RAMP_LEN,), np.float64)
+    spec[T_RNGW] = ((nch, 4), np.uint64)
+    spec[T_RNGP] = ((nch,), np.int64)
+    spec[T_CTL] = ((C_LEN,), np.int64)
+    spec[T_PIP] = spec[T_SIP] = ((K.IP_LEN,), np.int64)
+    spec[T_PFP] = spec[T_SFP] = ((K.FP_LEN,), np.float64)
+    spec[T_SRC] = ((max(int(src_frames), 1), nch), np.float64)
+    spec[T_XBUF] = ((int(max_frames), nch), np.float64)
+    spec[T_GENW] = ((nch, 4), np.uint64)
+    spec[T_GENF] = ((4,), np.float64)
+    spec[T_RING] = ((max(int(ring_frames), 1), nch), out_dtype)
+    offsets = []
+    offset = 0
+    for shape, dtype in spec:
+        offsets.append(offset)
+        size = int(np.prod(shape)) * np.dtype(dtype).itemsize
+        offset += (size + 63) // 64 * 64
+    return spec, offsets, offset
+
+
+class SharedBlock:
+    """Every array the callback touches, and the table of their addresses.
+
+    All arrays are views into one buffer, so a second process (the stream
+    worker) can map the same memory and build its own table of addresses.
+
+    Parameters
+    ----------
+    nchannels : int
+        Channels in and out.
+    out_bits : int
+        Output container: 16 for int16, 32 for left-justified int32.
+    max_frames : int
+        Largest block the callback processes in one kernel call (longer
+        PortAudio buffers are processed in pieces of this size).
+    ring_frames : int
+        Capacity of the tap ring in frames (0 when there is no tap).
+    src_frames : int
+        Frames of the preloaded file source (0 when there is none).
+    buffer : writable buffer or None
+        Memory to lay the arrays in (at least :attr:`nbytes`); None allocates.
+    init : bool
+        Initialise the layout fields and kernel state (the owner does; a
+        process attaching to existing memory does not).
+    """
+
+    def __init__(self, nchannels, out_bits, max_frames, ring_frames=0, src_frames=0, buffer=None, init=True):
+        self.nchannels = int(nchannels)
+        self.geometry = (self.nchannels, int(out_bits), int(max_frames), int(ring_frames), int(src_frames))
+        self.out_dtype = np.int16 if out_bits == 16 else np.int32
+        spec, offsets, self.nbytes = _layout(*self.geometry)
+        if buffer is None:
+            buffer = np.zeros(self.nbytes, dtype=np.uint8)
+        self._buffer = buffer
+        arrays = [np.ndarray(shape, dtype=dtype, buffer=buffer, offset=off) for (shape, dtype), off in zip(spec, offsets)]
+        self.kernel = K.KernelState(self.nchannels)
+        (self.kernel.iparams, self.kernel.fparams, self.kernel.hist, self.kernel.counts, self.kernel.clock,
+         self.kernel.ramp, self.kernel.rng_words, self.kernel.rng_pair) = arrays[T_KIP : T_RNGP + 1]
+        self.ctl = arrays[T_CTL]
+        self.pending_ip, self.pending_fp = arrays[T_PIP], arrays[T_PFP]
+        self.scratch_ip, self.scratch_fp = arrays[T_SIP], arrays[T_SFP]
+        self.source, self.xbuf, self.gen_words, self.gen_fp = arrays[T_SRC], arrays[T_XBUF], arrays[T_GENW], arrays[T_GENF]
+        self.ring = arrays[T_RING]
+        if init:
+            self.kernel.rng_pair[:] = -2
+            self.ctl[C_NCH] = self.nchannels
+            self.ctl[C_MAX_FRAMES] = int(max_frames)
+            self.ctl[C_OUT_BITS] = int(out_bits)
+            self.ctl[C_RING_FRAMES] = max(int(ring_frames), 1)
+            self.ctl[C_TAP_ON] = 1 if ring_frames > 0 else 0
+            self.ctl[C_SRC_FRAMES] = int(src_frames)
+        self._arrays = arrays  # kept alive: the table holds raw addresses
+        self.table = np.array([a.ctypes.data for a in arrays], dtype=np.int64)
+
+    @property
+    def address(self):
+        """Address of the table (the callback's userdata) in this process."""
+        return int(self.table.ctypes.data)
+
+    def counter(self, index):
+        """One ``ctl`` value as a Python int."""
+        return int(self.ctl[index])
+
+
+@njit(nogil=True, cache=True)
+def publish_params(ctl, pending_ip, pending_fp, new_ip, new_fp):
+    """Seqlock writer: copy ``new_ip``/``new_fp`` into the pending block; returns the new (even) sequence number."""
+    seq = ctl[C_PARAM_SEQ]
+    ctl[C_PARAM_SEQ] = seq + 1
+    fence()
+    for i in range(pending_ip.shape[0]):
+        pending_ip[i] = new_ip[i]
+    for i in range(pending_fp.shape[0]):
+        pending_fp[i] = new_fp[i]
+    fence()
+    ctl[C_PARAM_SEQ] = seq + 2
+    return seq + 2
+
+
+@njit(nogil=True, cache=True)
+def applied(ctl):
+    """(sequence number, sample index) of the parameters the callback last took, read in order."""
+    seq = ctl[C_APPLIED_SEQ]
+    fence()
+    frame = ctl[C_APPLIED_FRAME]
+    return seq, frame
+
+
+@njit(nogil=True, cache=True)
+def take_params(ctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fparams, frame):
+    """Seqlock reader (the callback's side): load new pending parameters if a consistent copy is available."""
+    s1 = ctl[C_PARAM_SEQ]
+    fence()
+    if (s1 & 1) != 0 or s1 == ctl[C_APPLIED_SEQ]:
+        return False
+    for i in range(pending_ip.shape[0]):
+        scratch_ip[i] = pending_ip[i]
+    for i in range(pending_fp.shape[0]):
+        scratch_fp[i] = pending_fp[i]
+    fence()
+    if ctl[C_PARAM_SEQ] != s1:
+        return False
+    for i in range(iparams.shape[0]):
+        iparams[i] = scratch_ip[i]
+    for i in range(fparams.shape[0]):
+        fparams[i] = scratch_fp[i]
+    ctl[C_APPLIED_FRAME] = frame
+    fence()
+    ctl[C_APPLIED_SEQ] = s1
+    return True
+
+
+@njit(nogil=True, cache=True)
+def ring_write(ctl, ring, words, nframes):
+    """Producer: append ``nframes`` frames of ``words`` whole, or count them dropped."""
+    if ctl[C_TAP_ON] == 0 or nframes == 0:
+        return
+    cap = ctl[C_RING_FRAMES]
+    head = ctl[C_RING_HEAD]
+    fence()
+    tail = ctl[C_RING_TAIL]
+    if cap - (head - tail) < nframes:
+        ctl[C_RING_DROPPED] += nframes
+        return
+    nch = ring.shape[1]
+    slot = head % cap
+    for n in range(nframes):
+        for c in range(nch):
+            ring[slot, c] = words[n, c]
+        slot += 1
+        if slot == cap:
+            slot = 0
+    fence()
+    ctl[C_RING_HEAD] = head + nframes
+
+
+@njit(nogil=True, cache=True)
+def ring_read(ctl, ring, out):
+    """Consumer: copy up to ``out.shape[0]`` frames into ``out``; returns the count."""
+    head = ctl[C_RING_HEAD]
+    fence()
+    tail = ctl[C_RING_TAIL]
+    cap = ctl[C_RING_FRAMES]
+    n = min(head - tail, out.shape[0])
+    nch = ring.shape[1]
+    slot = tail % cap
+    for k in range(n):
+        for c in range(nch):
+            out[k, c] = ring[slot, c]
+        slot += 1
+        if slot == cap:
+            slot = 0
+    fence()
+    ctl[C_RING_TAIL] = tail + n
+    return n
