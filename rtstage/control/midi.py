@@ -519,7 +519,8 @@ class MidiMapper:
             new_n = control.number(target)
             prev = self._last_target.get(key)
             self._last_target[key] = target
-            crossed = new_n == cur_n or (prev is not None and (control.number(prev) - cur_n) * (new_n - cur_n) <= 0)
+            met = new_n == cur_n or raw == control.to_position(cur)  # same value, or the position that shows it
+            crossed = met or (prev is not None and (control.number(prev) - cur_n) * (new_n - cur_n) <= 0)
             if not crossed:
                 return []
             self._engaged[key] = True
@@ -744,8 +745,8 @@ class MidiControl:
         self._stop = threading.Event()
         self._fb_lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="rtstage-midi", daemon=True)
-        self._in.ignore_types(sysex=True, timing=True, active_sense=True)
-        self._in.set_callback(self._on_message)
+        self.client_name = client_name
+        self._setup_in()
         controller.midi = self
         controller.add_listener(self._on_change)
 
@@ -817,13 +818,29 @@ class MidiControl:
             key = source[1] if isinstance(source, tuple) and source[0] == "midi" else None
             self._queue.put(("feedback", values, key))
 
+    def _setup_in(self):
+        self._in.ignore_types(sysex=True, timing=True, active_sense=True)
+        self._in.set_callback(self._on_message)
+
+    def _renew(self, old, factory):
+        # A port that went away is reopened on a new client: some backends
+        # (JACK in RtMidi) deliver nothing to a port closed and opened again.
+        try:
+            old.close_port()
+        except Exception:
+            pass
+        return factory(api_constants()[self.api], name=self.client_name)
+
     def _reconnect(self):
         if not self.virtual and self.in_port is not None:
             names = self._in.get_ports()
             if self.in_connected is not None and self.in_connected not in names:
-                self._in.close_port()
+                self._in.cancel_callback()
+                self._in = self._renew(self._in, _rtmidi().MidiIn)
+                self._setup_in()
                 _log(f"midi: input {self.in_connected} went away")
                 self.in_connected = None
+                names = self._in.get_ports()
             if self.in_connected is None:
                 i = match_port(names, self.in_port)
                 if i is not None:
@@ -833,9 +850,10 @@ class MidiControl:
         if not self.virtual and self.out_port is not None and self.map.feedback:
             names = self._out.get_ports()
             if self.out_connected is not None and self.out_connected not in names:
-                self._out.close_port()
+                self._out = self._renew(self._out, _rtmidi().MidiOut)
                 _log(f"midi: output {self.out_connected} went away")
                 self.out_connected = None
+                names = self._out.get_ports()
             if self.out_connected is None:
                 i = match_port(names, self.out_port)
                 if i is not None:
