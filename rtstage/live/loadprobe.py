@@ -10,9 +10,11 @@ PortAudio flagged (underflow, overflow) after a settle time:
     A plain sounddevice Python callback copying input to output, the usual
     way a Python program runs audio.
 
-``load`` adds a thread running pure-Python arithmetic for the whole phase:
-it holds the GIL except at the interpreter's switch interval, which is what
-starves a Python callback.
+``load`` adds a thread running pure-Python arithmetic for the whole phase,
+in the process whose thread runs the callback: it holds the GIL except at
+the interpreter's switch interval, which is what starves a Python callback.
+``procload`` runs the same arithmetic as a separate process: the same CPU
+contention without a shared GIL (the fair baseline on a 2-core machine).
 
 ``python -m rtstage.live.loadprobe PHASE[,PHASE...] --seconds S`` prints one
 JSON object per phase on stdout; a phase is ``MODE`` or ``MODE+load``.  If
@@ -42,16 +44,23 @@ def _busy(stop, counter):
 
 
 class _Load:
-    """A pure-Python busy thread, started and stopped by ``with``."""
+    """Busy pure Python, started and stopped by ``with``: a thread in this process, or a separate process."""
 
-    def __init__(self, enabled):
+    def __init__(self, enabled, separate_process=False):
         self.enabled = enabled
+        self.separate_process = separate_process
         self.stop = threading.Event()
         self.loops = [0]
         self.thread = None
+        self.process = None
 
     def __enter__(self):
-        if self.enabled:
+        if self.enabled and self.separate_process:
+            import subprocess
+
+            code = "x=0\nwhile True:\n    x=(x+x*x+1)%1000003\n"
+            self.process = subprocess.Popen([sys.executable, "-c", code])
+        elif self.enabled:
             self.thread = threading.Thread(target=_busy, args=(self.stop, self.loops), daemon=True)
             self.thread.start()
         return self
@@ -60,21 +69,29 @@ class _Load:
         self.stop.set()
         if self.thread is not None:
             self.thread.join()
+        if self.process is not None:
+            self.process.kill()
+            self.process.wait()
 
 
 def _log_size(path):
     return os.path.getsize(path) if path and os.path.exists(path) else None
 
 
-def measure_rtstage(seconds, load, blocksize=64, settle_s=1.0, device=None, jack_log=None):
-    """One phase of the live engine; returns a dict of counts after the settle time."""
+def measure_rtstage(seconds, load, blocksize=64, settle_s=1.0, device=None, jack_log=None, separate=False):
+    """One phase of the live engine; returns a dict of counts after the settle time.
+
+    ``load`` puts the busy thread inside the stream worker, the process whose
+    thread runs the callback; with ``separate`` the same load runs as a
+    separate process instead (the same CPU contention without a shared GIL).
+    """
     from .supervisor import LiveEngine
 
     engine = LiveEngine(SETTINGS, output_device=device, blocksize=blocksize, source="noise:level_dbfs=-20,seed=5",
-                        settle_s=settle_s)
+                        settle_s=settle_s, worker_load_thread=load and not separate)
     engine.prepare()
     span0 = _log_size(jack_log)
-    with _Load(load) as busy:
+    with _Load(load and separate, separate_process=True) as busy:
         engine.start()
         t_end = time.monotonic() + settle_s + seconds
         while time.monotonic() < t_end:
@@ -90,7 +107,7 @@ def measure_rtstage(seconds, load, blocksize=64, settle_s=1.0, device=None, jack
     }
 
 
-def measure_passthrough(seconds, load, blocksize=64, settle_s=1.0, device=None, jack_log=None):
+def measure_passthrough(seconds, load, blocksize=64, settle_s=1.0, device=None, jack_log=None, separate=False):
     """One phase of a plain sounddevice Python-callback pass-through."""
     import sounddevice as sd
 
@@ -111,7 +128,7 @@ def measure_passthrough(seconds, load, blocksize=64, settle_s=1.0, device=None, 
 
     span0 = _log_size(jack_log)
     loads = []
-    with _Load(load) as busy:
+    with _Load(load, separate_process=separate) as busy:
         with sd.RawStream(device=(in_index, out_index), samplerate=None, blocksize=blocksize, channels=2,
                           dtype="int16", callback=callback) as stream:
             settle_at[0] = time.monotonic() + settle_s
@@ -129,11 +146,12 @@ def measure_passthrough(seconds, load, blocksize=64, settle_s=1.0, device=None, 
 
 
 def run_phase(phase, seconds, blocksize=64, settle_s=1.0, device=None, jack_log=None):
-    """Run ``MODE`` or ``MODE+load`` (MODE: rtstage, passthrough)."""
+    """Run ``MODE``, ``MODE+load`` (busy thread beside the callback) or ``MODE+procload`` (busy separate process)."""
     mode, _, extra = phase.partition("+")
-    load = extra == "load"
+    load = extra in ("load", "procload")
     fn = {"rtstage": measure_rtstage, "passthrough": measure_passthrough}[mode]
-    result = fn(seconds, load, blocksize=blocksize, settle_s=settle_s, device=device, jack_log=jack_log)
+    result = fn(seconds, load, blocksize=blocksize, settle_s=settle_s, device=device, jack_log=jack_log,
+                separate=extra == "procload")
     result["flags_per_minute"] = round(60.0 * result["flagged_after_settle"] / seconds, 3)
     return result
 
