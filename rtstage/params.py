@@ -136,18 +136,22 @@ class ParamSpec:
 _SHAPER_CACHE = {}
 
 
-def _shaper_ids():
-    """Ids of the built-in and preset shapers, re-read only when the preset directory changes."""
+def _shapers():
+    """Built-in and preset shapers by id, re-read only when the preset directory changes."""
     try:
         stamp = os.stat(PRESET_SHAPER_DIR).st_mtime_ns
     except OSError:
         stamp = None
-    ids = _SHAPER_CACHE.get(stamp)
-    if ids is None:
-        ids = tuple(all_shapers())
+    shapers = _SHAPER_CACHE.get(stamp)
+    if shapers is None:
+        shapers = all_shapers()
         _SHAPER_CACHE.clear()
-        _SHAPER_CACHE[stamp] = ids
-    return ids
+        _SHAPER_CACHE[stamp] = shapers
+    return shapers
+
+
+def _shaper_ids():
+    return tuple(_shapers())
 
 
 _TABLE = (
@@ -267,8 +271,10 @@ def validate_values(values, current=None, force=False):
         checked[name] = validate(name, value)
     merged = dict(defaults() if current is None else current)
     merged.update(checked)
+    # The Shaper object, not its id, so that validation reads no file (it runs on the server's loop).
+    shaper = _shapers().get(merged["shaper"], merged["shaper"])
     settings = _engine.EngineSettings(
-        bits=merged["bits"], dither=merged["dither"], shaper=merged["shaper"], seed=merged["seed"],
+        bits=merged["bits"], dither=merged["dither"], shaper=shaper, seed=merged["seed"],
         gain_db=merged["gain_db"], dither_scale=merged["dither_scale"], force=bool(force),
     )
     settings.validate()

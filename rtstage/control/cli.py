@@ -90,3 +90,25 @@ def server_from_args(args, controller):
         raise RtstageError(f"--control-port must be 0 (off) or 1..65535, got {args.control_port}")
     token = read_token_file(args.control_token_file) if args.control_token_file else None
     return ControlServer(controller, host=args.control_host, port=args.control_port, token=token)
+
+
+def add_midi_arguments(parser):
+    """Add ``--midi-api``, ``--midi-in``, ``--midi-out``, ``--midi-map`` and ``--midi-virtual``."""
+    parser.add_argument("--midi-api", default="auto", choices=("auto", "jack", "alsa", "coremidi", "winmm"),
+                        help="MIDI API (default auto: the first that works, in this order)")
+    parser.add_argument("--midi-in", metavar="NAME", help="MIDI input port: a name substring (client numbers ignored)")
+    parser.add_argument("--midi-out", metavar="NAME", help="MIDI output port for value feedback: a name substring")
+    parser.add_argument("--midi-map", metavar="MAP", default="default",
+                        help="controller map: a name in presets/midi/ or a path to a .toml (default: default)")
+    parser.add_argument("--midi-virtual", action="store_true",
+                        help="open virtual ports control-in/control-out instead of connecting by name")
+
+
+def midi_from_args(args, controller):
+    """The :class:`~rtstage.control.midi.MidiControl` the ``--midi-*`` options ask for, not started; None without MIDI."""
+    if not (args.midi_in or args.midi_out or args.midi_virtual):
+        return None
+    from .midi import MidiControl, load_map
+
+    return MidiControl(controller, load_map(args.midi_map), api=args.midi_api, in_port=args.midi_in,
+                       out_port=args.midi_out, virtual=args.midi_virtual)

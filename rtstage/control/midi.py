@@ -902,7 +902,7 @@ class MidiControl:
             for action in actions:
                 try:
                     if action[0] == "set":
-                        self.controller.change(action[1], source=("midi", action[2]))
+                        self.controller.submit(action[1], source=("midi", action[2]))  # never wait here
                     else:
                         self.controller.recall(action[1], source="program")
                     self.applied += 1

@@ -233,13 +233,14 @@ class Controller:
         if callback in self._listeners:
             self._listeners.remove(callback)
 
-    def change(self, values, source="api"):
-        """Validate and apply ``values`` atomically.
+    def submit(self, values, source="api"):
+        """Validate ``values`` and queue them atomically, without waiting.
 
         Returns
         -------
-        (dict, int or None)
-            The canonical values applied and the sample index they took effect at.
+        (dict, int)
+            The canonical values queued and the target's ticket for
+            :meth:`ControlTarget.wait`.
 
         Raises
         ------
@@ -249,10 +250,15 @@ class Controller:
         with self._lock:
             checked = params.validate_values(values, self.target.get(), force=self.force)
             self.target.check(checked)
-            frame = self.target.set(checked)
+            ticket = self.target.submit(checked)
         for callback in list(self._listeners):
             callback(checked, source)
-        return checked, frame
+        return checked, ticket
+
+    def change(self, values, source="api"):
+        """Validate and apply ``values`` atomically; returns ``(values, frame)``, frame None if not known in time."""
+        checked, ticket = self.submit(values, source)
+        return checked, self.target.wait(ticket)
 
     def recall(self, name, source="preset"):
         """Load preset ``name`` and apply it atomically."""
@@ -309,17 +315,23 @@ class Dispatcher:
             return rid
         return self.handle(req, session)
 
-    def handle(self, req, session):
-        """Reply to one decoded request; never raises for a bad request."""
+    def handle(self, req, session, defer_wait=False):
+        """Reply to one decoded request; never raises for a bad request.
+
+        With ``defer_wait`` a ``set`` reply comes back as soon as the change is
+        queued, marked for :meth:`finish_set`, which the caller runs where
+        blocking is allowed.
+        """
         rid = req.get("id")
         op = req["op"]
         if not session.authenticated and op not in ("hello", "auth"):
             session.closing = "not authenticated"
             return error_reply(rid, "authenticate first: send {\"op\": \"auth\", \"token\": ...}")
         try:
-            return getattr(self, "_op_" + op)(req, rid, session)
+            reply = getattr(self, "_op_" + op)(req, rid, session)
         except RtstageError as exc:
             return error_reply(rid, exc)
+        return reply if defer_wait else self.finish_set(reply)
 
     # Each _op_ returns the reply or raises RtstageError with the reason.
     def _op_hello(self, req, rid, session):
@@ -351,11 +363,19 @@ class Dispatcher:
         return ok_reply(rid, values={n: values[n] for n in names})
 
     def _op_set(self, req, rid, session):
+        # Validates and queues at once; the server then waits for the block
+        # boundary off its loop (see ``finish_set``) to report ``at_frame``.
         _fields(req, ("values",))
         if "values" not in req:
             raise RequestError("set needs 'values', an object of parameter names to values")
-        checked, frame = self.controller.change(req["values"], source="socket")
-        return ok_reply(rid, values=checked, at_frame=frame)
+        checked, ticket = self.controller.submit(req["values"], source="socket")
+        return ok_reply(rid, values=checked, at_frame=ticket, _wait=True)
+
+    def finish_set(self, reply):
+        """Turn the ticket of a queued ``set`` reply into the sample index it took effect at (blocks)."""
+        if reply.pop("_wait", False):
+            reply["at_frame"] = self.controller.target.wait(reply["at_frame"])
+        return reply
 
     def _op_status(self, req, rid, session):
         _fields(req, ())

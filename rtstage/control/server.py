@@ -44,7 +44,7 @@ from ..errors import RtstageError
 from . import DEFAULT_CONTROL_PORT, PROTOCOL_VERSION
 from .protocol import Dispatcher, Session, encode, error_reply, parse_request
 
-BLOCKING_OPS = frozenset(("set", "preset_load", "preset_save", "learn", "learn_cancel"))
+BLOCKING_OPS = frozenset(("preset_load", "preset_save", "learn", "learn_cancel"))
 """Ops that may wait (for a block boundary or a file): run on a worker thread."""
 
 
@@ -363,7 +363,10 @@ class ControlServer:
             if req["op"] in BLOCKING_OPS:
                 reply = await loop.run_in_executor(self._pool, self.dispatcher.handle, req, session)
             else:
-                reply = self.dispatcher.handle(req, session)
+                reply = self.dispatcher.handle(req, session, defer_wait=True)
+                if reply.get("_wait"):
+                    # queued on the loop at once; wait for the block boundary off the loop
+                    reply = await loop.run_in_executor(self._pool, self.dispatcher.finish_set, reply)
             client.send(reply)
             if req["op"] == "subscribe" and reply["ok"]:
                 client.wake.set()

@@ -17,13 +17,18 @@ The contract a target must keep
     Raise :class:`~rtstage.errors.RtstageError` for changes this target
     cannot take although they are valid in general (for example ``bits``
     beyond the word container chosen at start).  Called before ``set``.
+``submit(values) -> ticket``
+    Queue already validated, canonical changes atomically: all of them take
+    effect together at the next block boundary, never half of them.  Never
+    blocks (a few microseconds: it writes the parameter block); safe from any
+    non-audio thread; never makes the audio thread wait.  Returns an
+    increasing integer ticket.
+``wait(ticket, timeout_s=None) -> int | None``
+    Block until the changes of ``ticket`` (or a later one) took effect and
+    return the sample index of the block that applied them, or None after
+    the timeout (they still take effect).
 ``set(values) -> int | None``
-    Apply already validated, canonical changes atomically: all of them take
-    effect together at one block boundary, never half of them.  Returns the
-    sample index at which they took effect when known within
-    ``apply_timeout_s``, else None (they still take effect, at the next block
-    boundary).  Must be safe to call from any non-audio thread, may block for
-    about one block period, and must never make the audio thread wait.
+    ``wait(submit(values))`` (provided by :class:`ControlTarget`).
 ``status() -> dict``
     At least ``state`` (``"running"`` or ``"idle"``), ``frame``,
     ``samplerate``, ``nchannels``, ``blocksize``, ``uptime_s``, ``xruns``,
@@ -59,9 +64,17 @@ class ControlTarget:
     def check(self, values):
         """Raise :class:`RtstageError` for valid changes this target cannot take."""
 
+    def submit(self, values):
+        """Queue validated changes atomically for the next block boundary, without waiting; returns a ticket."""
+        raise NotImplementedError
+
+    def wait(self, ticket, timeout_s=None):
+        """Wait (at most ``timeout_s``) until the changes of ``ticket`` took effect; their sample index, or None."""
+        raise NotImplementedError
+
     def set(self, values):
         """Apply validated changes atomically; return the sample index they took effect at, or None."""
-        raise NotImplementedError
+        return self.wait(self.submit(values))
 
     def status(self):
         """Engine status (see the module docstring for the fields)."""
@@ -133,7 +146,7 @@ class EngineTarget(ControlTarget):
         if bits is not None and container_bits(bits) > self.engine.container:
             raise RtstageError(f"bits={bits} does not fit this engine's {self.engine.container}-bit output")
 
-    def set(self, values):
+    def submit(self, values):
         self.check(values)
         with self._cond:
             self._values.update(values)
@@ -144,9 +157,13 @@ class EngineTarget(ControlTarget):
         if not running:
             with self._engine_lock:
                 self._apply_pending()
+        return seq
+
+    def wait(self, ticket, timeout_s=None):
+        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
         with self._cond:
-            self._cond.wait_for(lambda: self._applied_seq >= seq, timeout=self.apply_timeout_s)
-            for s in range(seq, self._applied_seq + 1):
+            self._cond.wait_for(lambda: self._applied_seq >= ticket, timeout=timeout_s)
+            for s in range(ticket, self._applied_seq + 1):
                 if s in self._applied_frame:
                     return self._applied_frame[s]
             return None
