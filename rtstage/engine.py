@@ -34,6 +34,9 @@ MAX_BITS = 24
 MIN_SAMPLERATE = 8000
 MAX_SAMPLERATE = 384000
 MAX_CHANNELS = 64
+MIN_GAIN_DB = -120.0
+MAX_GAIN_DB = 40.0
+MAX_DITHER_SCALE = 4.0
 GAIN_RAMP_SECONDS = 0.010
 """Duration of a gain (or mute) ramp: 10 ms, long enough to avoid zipper noise."""
 
@@ -123,10 +126,10 @@ class EngineSettings:
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
                 raise RtstageError(f"{name} must be a finite number, got {value!r}")
-        if not -120.0 <= self.gain_db <= 40.0:
-            raise RtstageError(f"gain_db must be between -120 and +40 dB, got {self.gain_db}")
-        if not 0.0 <= self.dither_scale <= 4.0:
-            raise RtstageError(f"dither_scale must be between 0 and 4, got {self.dither_scale}")
+        if not MIN_GAIN_DB <= self.gain_db <= MAX_GAIN_DB:
+            raise RtstageError(f"gain_db must be between {MIN_GAIN_DB:g} and +{MAX_GAIN_DB:g} dB, got {self.gain_db}")
+        if not 0.0 <= self.dither_scale <= MAX_DITHER_SCALE:
+            raise RtstageError(f"dither_scale must be between 0 and {MAX_DITHER_SCALE:g}, got {self.dither_scale}")
         shaper = self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper)
         if shaper.ntaps > MAX_TAPS:
             raise RtstageError(f"shaper '{shaper.id}' has {shaper.ntaps} taps; at most {MAX_TAPS}")
@@ -173,7 +176,8 @@ class Engine:
     def __init__(self, settings, nchannels, samplerate, container=None, start_frame=0):
         if isinstance(nchannels, bool) or not isinstance(nchannels, (int, np.integer)) or not 1 <= nchannels <= MAX_CHANNELS:
             raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {nchannels}")
-        if not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE:
+        if (isinstance(samplerate, bool) or not isinstance(samplerate, (int, float, np.integer, np.floating))
+                or not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE):
             raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
         self.settings = settings.resolved()
         self.nchannels = int(nchannels)

@@ -26,16 +26,22 @@ low bits zero.
 
 Dither from (seed, channel, sample index)
 -----------------------------------------
-For sample index n on channel c the kernel takes the four words of
-Philox4x64-10 with key ``(seed, c)`` and counter ``(n >> 1, 0, 0, 0)``; sample n
-uses words ``2·(n & 1)`` and ``2·(n & 1) + 1``, called a and b.  A word w maps
-to a uniform ``U(w) = ((w >> 12) + 1/2)·2^-52 - 1/2`` in (-1/2, 1/2), exactly
-symmetric about 0.  Then, in LSB and before the amplitude scale:
+For sample index n on channel c the kernel takes the four 64-bit words of
+Philox4x64-10 with key ``(seed, c)`` and counter ``(n >> 2, 0, 0, 0)``; sample n
+uses word ``n & 3``, whose low 32 bits are called a and high 32 bits b.  A
+32-bit value w maps to a uniform ``U(w) = (w + 1/2)·2^-32 - 1/2`` in
+(-1/2, 1/2), exactly symmetric about 0.  Then, in LSB and before the amplitude
+scale:
 
 * ``rpdf``: U(a)
 * ``tpdf``: U(a) + U(b)
-* ``tpdf-hp``: U(a[n]) - U(a[n-1])
+* ``tpdf-hp``: U(a[n]) - U(a[n-1]); for n = 0, a[-1] is the low half of word 3
+  of counter 2^64 - 1 (the index wraps like the counter)
 * ``gaussian``: 0.5·sqrt(-2 ln(U(a) + 1/2))·cos(2π(U(b) + 1/2))
+
+One Philox block thus serves four samples of a channel.  The kernel computes
+blocks a few ahead of their use into a small ring (off the feedback loop's
+critical path); the ring is a cache that never changes a value.
 
 Clip rule
 ---------
@@ -112,6 +118,18 @@ HIST_LEN = 64
 """Error-history length per channel (a power of two, at least MAX_TAPS)."""
 HIST_MASK = HIST_LEN - 1
 
+FRAMES_PER_BLOCK_SHIFT = 2
+"""A Philox block serves 2**FRAMES_PER_BLOCK_SHIFT = 4 frames of a channel."""
+RNG_RING_BLOCKS = 16
+"""Philox blocks kept per channel, a ring indexed by ``block & (RNG_RING_BLOCKS - 1)``."""
+RNG_LOOKAHEAD_BLOCKS = 8
+"""How many blocks ahead of its use a Philox block is computed."""
+RNG_TAG_FRAME = 0
+"""Tag: the frame from which the ring is valid (-1: invalid)."""
+RNG_TAG_SEED = 1
+"""Tag: the seed the ring was computed for."""
+RNG_TAG_LEN = 2
+
 DITHER_NONE = 0
 DITHER_RPDF = 1
 DITHER_TPDF = 2
@@ -119,7 +137,8 @@ DITHER_TPDF_HP = 3
 DITHER_GAUSSIAN = 4
 
 _TWO_PI = 2.0 * math.pi
-_U_SCALE = 2.0**-52
+_U_SCALE = 2.0**-32
+_LOW32 = np.uint64(0xFFFFFFFF)
 _DENORMAL_GUARD = 1e-30
 
 
@@ -138,8 +157,11 @@ class KernelState:
         Next sample index, history slot, frames left in the gain ramp.
     ramp : ndarray
         Current gain, step and target of the gain ramp.
-    rng_words, rng_pair : ndarray
-        Cache of the last Philox block per channel (values never depend on it).
+    rng_words : ndarray, shape (nchannels * RNG_RING_BLOCKS, 4)
+        Ring of Philox blocks computed ahead of use (values never depend on it).
+    rng_tag : ndarray, shape (RNG_TAG_LEN,)
+        Frame and seed the ring is valid for, so that a block continuing the
+        previous one reuses it.
     """
 
     def __init__(self, nchannels):
@@ -150,12 +172,12 @@ class KernelState:
         self.counts = np.zeros((self.nchannels, CNT_LEN), dtype=np.int64)
         self.clock = np.zeros(CLK_LEN, dtype=np.int64)
         self.ramp = np.zeros(RAMP_LEN, dtype=np.float64)
-        self.rng_words = np.zeros((self.nchannels, 4), dtype=np.uint64)
-        self.rng_pair = np.full(self.nchannels, -2, dtype=np.int64)
+        self.rng_words = np.zeros((self.nchannels * RNG_RING_BLOCKS, 4), dtype=np.uint64)
+        self.rng_tag = np.full(RNG_TAG_LEN, -1, dtype=np.int64)
 
     def arrays(self):
         """The arrays in the order :func:`process_block` takes them after ``x, y, nframes``."""
-        return (self.iparams, self.fparams, self.hist, self.counts, self.clock, self.ramp, self.rng_words, self.rng_pair)
+        return (self.iparams, self.fparams, self.hist, self.counts, self.clock, self.ramp, self.rng_words, self.rng_tag)
 
     def reset(self, start_frame=0):
         """Clear history, counters and caches; the next frame gets sample index ``start_frame``."""
@@ -163,7 +185,7 @@ class KernelState:
         self.counts[:] = 0
         self.clock[:] = 0
         self.clock[CLK_FRAME] = start_frame
-        self.rng_pair[:] = -2
+        self.rng_tag[:] = -1
         gain = self.fparams[FP_GAIN]
         self.ramp[:] = 0.0
         self.ramp[RAMP_GAIN] = gain
@@ -172,32 +194,32 @@ class KernelState:
 
 @njit(nogil=True, cache=True, inline="always")
 def _uniform(word):
-    return (np.float64(word >> np.uint64(12)) + 0.5) * _U_SCALE - 0.5
+    return (np.float64(word) + 0.5) * _U_SCALE - 0.5
 
 
 @njit(nogil=True, cache=True, inline="always")
-def _words(seed, c, index, rng_words, rng_pair):
-    """Make ``rng_words[c]`` hold the Philox block of ``index``; return the word offset."""
-    pair = index >> 1
-    if rng_pair[c] != pair:
-        philox4x64(np.uint64(pair), np.uint64(0), np.uint64(0), np.uint64(0), seed, np.uint64(c), rng_words, c)
-        rng_pair[c] = pair
-    return (index & 1) * 2
+def _fill_block(seed, c, block, rng_words):
+    """Compute Philox block ``block`` of channel ``c`` into its ring row."""
+    row = c * RNG_RING_BLOCKS + (block & (RNG_RING_BLOCKS - 1))
+    philox4x64(np.uint64(block), np.uint64(0), np.uint64(0), np.uint64(0), seed, np.uint64(c), rng_words, row)
 
 
 @njit(nogil=True, cache=True, inline="always")
-def _dither(kind, seed, c, index, rng_words, rng_pair):
+def _half(c, index, high, rng_words):
+    """Low (a) or high (b) 32 bits of word ``index & 3`` of block ``index >> 2`` (already in the ring)."""
+    w = rng_words[c * RNG_RING_BLOCKS + ((index >> FRAMES_PER_BLOCK_SHIFT) & (RNG_RING_BLOCKS - 1)), index & 3]
+    return w >> np.uint64(32) if high else w & _LOW32
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _dither(kind, c, index, rng_words):
     """Dither value in LSB (amplitude scale 1) for channel ``c`` at ``index``."""
+    a = _uniform(_half(c, index, False, rng_words))
     if kind == DITHER_TPDF_HP:
-        j = _words(seed, c, index - 1, rng_words, rng_pair)
-        previous = _uniform(rng_words[c, j])
-        j = _words(seed, c, index, rng_words, rng_pair)
-        return _uniform(rng_words[c, j]) - previous
-    j = _words(seed, c, index, rng_words, rng_pair)
-    a = _uniform(rng_words[c, j])
+        return a - _uniform(_half(c, index - 1, False, rng_words))
     if kind == DITHER_RPDF:
         return a
-    b = _uniform(rng_words[c, j + 1])
+    b = _uniform(_half(c, index, True, rng_words))
     if kind == DITHER_TPDF:
         return a + b
     # DITHER_GAUSSIAN, sigma = 0.5 LSB
@@ -205,7 +227,7 @@ def _dither(kind, seed, c, index, rng_words, rng_pair):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_pair):
+def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag):
     """Requantize ``nframes`` frames of ``x`` into ``y``.
 
     Parameters
@@ -216,7 +238,7 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
         Output words, ``q << out_shift``.
     nframes : int
         Frames to process; 0 is allowed.
-    iparams, fparams, hist, counts, clock, ramp, rng_words, rng_pair : ndarray
+    iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag : ndarray
         Parameters and state, see :class:`KernelState`; state is updated in place.
     """
     nch = hist.shape[0]
@@ -242,16 +264,27 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
     step = ramp[RAMP_STEP]
     ramp_left = clock[CLK_RAMP_LEFT]
 
-    for c in range(nch):
-        rng_pair[c] = -2
     frame0 = clock[CLK_FRAME]
     hpos = clock[CLK_HPOS]
+    # Unless this block continues the last one with the same seed, prime the
+    # ring with the blocks of the first frames (one earlier for tpdf-hp); the
+    # frame loop then computes each block RNG_LOOKAHEAD_BLOCKS ahead of its use.
+    dithered = kind != DITHER_NONE
+    seed_tag = iparams[IP_SEED]
+    if dithered and nframes > 0 and not (rng_tag[RNG_TAG_FRAME] == frame0 and rng_tag[RNG_TAG_SEED] == seed_tag):
+        block0 = frame0 >> FRAMES_PER_BLOCK_SHIFT
+        for block in range(block0 - 1, block0 + RNG_LOOKAHEAD_BLOCKS + 1):
+            for c in range(nch):
+                _fill_block(seed, c, block, rng_words)
 
     for n in range(nframes):
         if ramp_left > 0:
             ramp_left -= 1
             gain = target if ramp_left == 0 else gain + step
         index = frame0 + n
+        if dithered and (index & 3) == 0:
+            for c in range(nch):
+                _fill_block(seed, c, (index >> FRAMES_PER_BLOCK_SHIFT) + RNG_LOOKAHEAD_BLOCKS, rng_words)
         for c in range(nch):
             xv = np.float64(x[n, c])
             if not math.isfinite(xv):
@@ -271,9 +304,9 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
                     fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
                 u -= fb
             d = 0.0
-            if kind != DITHER_NONE:
-                d = _dither(kind, seed, c, index, rng_words, rng_pair) * dscale
-            q = math.floor(u + d + 0.5)
+            if dithered:
+                d = _dither(kind, c, index, rng_words) * dscale
+            q = np.floor(u + d + 0.5)
             e = q - u
             if q > q_hi or q < q_lo:
                 q = q_hi if q > q_hi else q_lo
@@ -289,6 +322,10 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
             y[n, c] = np.int64(q) << shift
         hpos = (hpos + 1) & HIST_MASK
 
+    if nframes > 0:
+        # Frames without dither fill nothing, so the ring no longer follows the clock.
+        rng_tag[RNG_TAG_FRAME] = frame0 + nframes if dithered else -1
+        rng_tag[RNG_TAG_SEED] = seed_tag
     clock[CLK_FRAME] = frame0 + nframes
     clock[CLK_HPOS] = hpos
     clock[CLK_RAMP_LEFT] = ramp_left

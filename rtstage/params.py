@@ -59,9 +59,9 @@ MONITOR_MODES = ("requantized", "error", "input")
 # Ranges that EngineSettings.validate checks inline; read from the engine when it
 # exports them, so that there is one source of truth (tests/test_params.py checks
 # these bounds against EngineSettings.validate itself).
-MIN_GAIN_DB = getattr(_engine, "MIN_GAIN_DB", -120.0)
-MAX_GAIN_DB = getattr(_engine, "MAX_GAIN_DB", 40.0)
-MAX_DITHER_SCALE = getattr(_engine, "MAX_DITHER_SCALE", 4.0)
+MIN_GAIN_DB = _engine.MIN_GAIN_DB
+MAX_GAIN_DB = _engine.MAX_GAIN_DB
+MAX_DITHER_SCALE = _engine.MAX_DITHER_SCALE
 
 MAX_ERROR_GAIN_DB = 90.0
 """Largest make-up gain for the error monitor (the error of a 16-bit word sits near -101 dBFS)."""

@@ -73,7 +73,7 @@ class Shaper:
 
 
 # The published 44.1 kHz sets.  The values are those printed in the papers,
-# written here from memory of the tables; tests/test_shapers.py checks each one
+# written here from memory of the tables; tests/test_shaper_spectra.py checks each one
 # for minimum phase and a 0 dB log-mean (Gerzon & Craven), which a mistyped
 # coefficient would almost surely break.
 _BUILTIN = (
@@ -225,11 +225,11 @@ def log_mean_db(coefs, npoints=1 << 16):
     shaping can move added noise between frequencies, never remove it.
     """
     b = np.concatenate(([1.0], -np.asarray(coefs, dtype=np.float64)))
-    spectrum = np.fft.rfft(b, 2 * npoints)
-    mag = np.abs(spectrum)
-    # Trapezoid over [0, pi]: the circle's mean by symmetry.
-    logs = 20.0 * np.log10(np.maximum(mag, 1e-300))
-    return float((logs[0] / 2 + logs[1:-1].sum() + logs[-1] / 2) / (logs.size - 1))
+    # Midpoints of (0, pi): the circle's mean by symmetry, never evaluated on a
+    # zero at DC or Nyquist such as those of (1 - z^-1)^k.
+    w = (np.arange(npoints) + 0.5) * np.pi / npoints
+    mag = np.abs(np.exp(-1j * np.outer(w, np.arange(b.size))) @ b)
+    return float(np.mean(20.0 * np.log10(np.maximum(mag, 1e-300))))
 
 
 def error_bound_lsb(coefs, dither_peak_lsb):

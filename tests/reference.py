@@ -70,9 +70,9 @@ def philox_words_numpy(seed, channel, first_block, nblocks):
     return gen.random_raw(4 * nblocks).reshape(nblocks, 4)
 
 
-def uniform_from_word(word):
-    """``U(w) = ((w >> 12) + 1/2)·2^-52 - 1/2`` as a Python float (kernel docstring)."""
-    return ((int(word) >> 12) + 0.5) * 2.0**-52 - 0.5
+def uniform_from_word(half):
+    """``U(w) = (w + 1/2)·2^-32 - 1/2`` of a 32-bit value, as a Python float (kernel docstring)."""
+    return (int(half) + 0.5) * 2.0**-32 - 0.5
 
 
 class _Words:
@@ -85,8 +85,8 @@ class _Words:
 
     def prefetch(self, first_index, last_index):
         """Fetch the blocks holding sample indices first_index..last_index (may be negative)."""
-        lo = first_index >> 1
-        hi = last_index >> 1
+        lo = first_index >> 2
+        hi = last_index >> 2
         blocks = [b & UINT64_MASK for b in range(lo, hi + 1)]
         runs = []
         for b in blocks:
@@ -100,11 +100,15 @@ class _Words:
                 self.cache[start + i] = words[i]
 
     def word(self, index, which):
-        """Word ``2·(index & 1) + which`` of the block ``index >> 1`` (counter taken mod 2^64)."""
-        block = (index >> 1) & UINT64_MASK
+        """Low (``which`` = 0, a) or high (1, b) 32 bits of word ``index & 3`` of block ``index >> 2``.
+
+        The counter is taken mod 2^64.
+        """
+        block = (index >> 2) & UINT64_MASK
         if block not in self.cache:
             self.prefetch(index, index)
-        return self.cache[block][2 * (index & 1) + which]
+        word = int(self.cache[block][index & 3])
+        return (word >> 32) if which else (word & 0xFFFFFFFF)
 
 
 def dither_lsb(kind, words, index):

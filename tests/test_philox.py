@@ -113,8 +113,9 @@ class TestAppliedDither:
             assert_array_equal(q[:, c], np.floor(v[:, c] + d + 0.5).astype(np.int64))
 
     def test_hp_first_sample_uses_previous_index(self):
-        # tpdf-hp at sample n = 0 uses a[-1]: counter (-1 >> 1) mod 2^64 = 2^64 - 1, word 2
-        # (kernel docstring: counter (n >> 1), words 2·(n & 1)).  Checked via the reference.
+        # tpdf-hp at sample n = 0 uses a[-1]: the low half of word (-1 & 3) = 3 of counter
+        # (-1 >> 2) mod 2^64 = 2^64 - 1 (kernel docstring: counter (n >> 2), word n & 3).
+        # Checked via the reference.
         seed = 31337
         q = _engine_words("tpdf-hp", seed, 1, np.zeros((8, 1)), 0, dither_scale=4.0)
         d = ref.dither_sequence("tpdf-hp", seed, 0, 0, 8) * 4.0

@@ -7,7 +7,7 @@ numpy's own decoding of the little-endian formats.
 import os
 import subprocess
 import sys
-import time
+import threading
 
 import numpy as np
 import pytest
@@ -102,22 +102,24 @@ def test_broken_pipe_exits_cleanly():
         PIPE + ["--samplerate", "48000", "--channels", "2", "--in-format", "s16le", "--out-format", "s16le", "--seed", "1"],
         stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
     )
-    try:
-        proc.stdout.read(4096)
-        proc.stdout.close()
+    def feed():
         chunk = np.zeros(48000 * 2, dtype="<i2").tobytes()
         try:
             for _ in range(20):
                 proc.stdin.write(chunk)
                 proc.stdin.flush()
-        except BrokenPipeError:
-            pass
-        try:
             proc.stdin.close()
-        except BrokenPipeError:
+        except (BrokenPipeError, ValueError):
             pass
+
+    writer = threading.Thread(target=feed, daemon=True)
+    writer.start()
+    try:
+        assert len(proc.stdout.read(4096)) == 4096
+        proc.stdout.close()
         assert proc.wait(timeout=60) == 0
         err = proc.stderr.read().decode()
+        writer.join(timeout=10)
     finally:
         if proc.poll() is None:
             proc.kill()

@@ -6,9 +6,9 @@
  * TPDF dither (kernel dither code 2) at a constant gain (no ramp in progress):
  *
  *   for sample index n on channel c
- *     (w0, w1, w2, w3) = Philox4x64-10(counter = (n >> 1, 0, 0, 0), key = (seed, c))
- *     a = w[2 (n & 1)], b = w[2 (n & 1) + 1]
- *     U(w) = ((w >> 12) + 1/2) 2^-52 - 1/2
+ *     (w0, w1, w2, w3) = Philox4x64-10(counter = (n >> 2, 0, 0, 0), key = (seed, c))
+ *     a = low 32 bits of w[n & 3], b = its high 32 bits
+ *     U(w) = (w + 1/2) 2^-32 - 1/2
  *     d    = (U(a) + U(b)) dither_scale                       (TPDF, in LSB)
  *     u    = x gain 2^(B-1) - sum_{k=1..N} h_k e[n-k]
  *     q    = floor(u + d + 1/2), limited to [-2^(B-1), 2^(B-1) - 1]
@@ -24,7 +24,7 @@
  * "Plain" is deliberate: the outer loop runs over channels and the inner loop
  * over frames (striding through the interleaved buffers), the error history is
  * a shifted array (memmove per sample), and Philox is computed for every sample
- * from scratch (no reuse of the block between the two samples of a pair).  This
+ * from scratch (no reuse of the block among the four samples it serves).  This
  * is the straightforward C a reader would write from the recurrence above.
  *
  * Build (tools/bench_core.py does this):
@@ -74,9 +74,9 @@ static void philox4x64_10(uint64_t ctr[4], uint64_t k0, uint64_t k1)
     ctr[3] = c3;
 }
 
-static double uniform_of_word(uint64_t w)
+static double uniform_of_half(uint64_t w)
 {
-    return ((double)(w >> 12) + 0.5) * 0x1p-52 - 0.5;
+    return ((double)w + 0.5) * 0x1p-32 - 0.5;
 }
 
 /*
@@ -117,10 +117,10 @@ void rq_plain_tpdf_f64_i16(const double *x, int16_t *y, int64_t nframes, int64_t
                     fb += h[k] * hc[k];
                 u -= fb;
             }
-            uint64_t w[4] = {(uint64_t)index >> 1, 0, 0, 0};
+            uint64_t w[4] = {(uint64_t)index >> 2, 0, 0, 0};
             philox4x64_10(w, seed, (uint64_t)c);
-            int j = (int)(index & 1) * 2;
-            double d = (uniform_of_word(w[j]) + uniform_of_word(w[j + 1])) * dither_scale;
+            uint64_t word = w[index & 3];
+            double d = (uniform_of_half(word & 0xFFFFFFFFULL) + uniform_of_half(word >> 32)) * dither_scale;
             double q = floor(u + d + 0.5);
             double e = q - u;
             if (q > q_hi || q < q_lo) {

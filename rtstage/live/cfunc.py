@@ -63,8 +63,8 @@ def _run(x, y, n, table, ctl, nch):
         _view(table, S.T_COUNTS, (nch, K.CNT_LEN), np.int64),
         _view(table, S.T_CLOCK, (K.CLK_LEN,), np.int64),
         _view(table, S.T_RAMP, (K.RAMP_LEN,), np.float64),
-        _view(table, S.T_RNGW, (nch, 4), np.uint64),
-        _view(table, S.T_RNGP, (nch,), np.int64),
+        _view(table, S.T_RNGW, (nch * K.RNG_RING_BLOCKS, 4), np.uint64),
+        _view(table, S.T_RNGT, (K.RNG_TAG_LEN,), np.int64),
     )
     ring = _view(table, S.T_RING, (ctl[S.C_RING_FRAMES], nch), y.dtype)
     S.ring_write(ctl, ring, y, n)

@@ -35,7 +35,7 @@ from .. import kernel as K
 from ._ptr import fence
 
 # --- table of addresses (userdata) -----------------------------------------------
-T_KIP, T_KFP, T_HIST, T_COUNTS, T_CLOCK, T_RAMP, T_RNGW, T_RNGP = range(8)
+T_KIP, T_KFP, T_HIST, T_COUNTS, T_CLOCK, T_RAMP, T_RNGW, T_RNGT = range(8)
 T_CTL = 8
 T_PIP = 9
 """Pending iparams (seqlock-guarded)."""
@@ -122,8 +122,8 @@ def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames):
     spec[T_COUNTS] = ((nch, K.CNT_LEN), np.int64)
     spec[T_CLOCK] = ((K.CLK_LEN,), np.int64)
     spec[T_RAMP] = ((K.RAMP_LEN,), np.float64)
-    spec[T_RNGW] = ((nch, 4), np.uint64)
-    spec[T_RNGP] = ((nch,), np.int64)
+    spec[T_RNGW] = ((nch * K.RNG_RING_BLOCKS, 4), np.uint64)
+    spec[T_RNGT] = ((K.RNG_TAG_LEN,), np.int64)
     spec[T_CTL] = ((C_LEN,), np.int64)
     spec[T_PIP] = spec[T_SIP] = ((K.IP_LEN,), np.int64)
     spec[T_PFP] = spec[T_SFP] = ((K.FP_LEN,), np.float64)
@@ -178,14 +178,14 @@ class SharedBlock:
         arrays = [np.ndarray(shape, dtype=dtype, buffer=buffer, offset=off) for (shape, dtype), off in zip(spec, offsets)]
         self.kernel = K.KernelState(self.nchannels)
         (self.kernel.iparams, self.kernel.fparams, self.kernel.hist, self.kernel.counts, self.kernel.clock,
-         self.kernel.ramp, self.kernel.rng_words, self.kernel.rng_pair) = arrays[T_KIP : T_RNGP + 1]
+         self.kernel.ramp, self.kernel.rng_words, self.kernel.rng_tag) = arrays[T_KIP : T_RNGT + 1]
         self.ctl = arrays[T_CTL]
         self.pending_ip, self.pending_fp = arrays[T_PIP], arrays[T_PFP]
         self.scratch_ip, self.scratch_fp = arrays[T_SIP], arrays[T_SFP]
         self.source, self.xbuf, self.gen_words, self.gen_fp = arrays[T_SRC], arrays[T_XBUF], arrays[T_GENW], arrays[T_GENF]
         self.ring = arrays[T_RING]
         if init:
-            self.kernel.rng_pair[:] = -2
+            self.kernel.rng_tag[:] = -1
             self.ctl[C_NCH] = self.nchannels
             self.ctl[C_MAX_FRAMES] = int(max_frames)
             self.ctl[C_OUT_BITS] = int(out_bits)
