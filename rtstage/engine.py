@@ -187,6 +187,7 @@ class Engine:
             raise RtstageError(f"a {self.settings.bits}-bit word does not fit a {self.container}-bit container")
         self.dtype = np.int16 if self.container == 16 else np.int32
         self.state = K.KernelState(self.nchannels)
+        self._no_tap = np.empty((0, self.nchannels), dtype=np.float64)
         self.apply(self.settings, ramp=False)
         self.state.reset(start_frame)
         warm_kernel(self.dtype)
@@ -230,12 +231,14 @@ class Engine:
         """Replaced NaN/Inf samples per channel since the start."""
         return self.state.counts[:, K.CNT_NONFINITE].copy()
 
-    def process(self, x, out=None):
+    def process(self, x, out=None, quantizer_in=None):
         """Requantize a block ``x`` of shape (frames, nchannels), float32 or float64.
 
         Returns the output words, shape (frames, nchannels), int16 for a 16-bit
         container and left-justified int32 otherwise.  Pass ``out`` to reuse
-        an array; then nothing is allocated.
+        an array; then nothing is allocated.  Pass ``quantizer_in`` (float64,
+        at least as many rows as ``x``) to receive ``x·gain`` as the quantizer
+        saw it, for meters.
         """
         x = np.asarray(x)
         if x.ndim != 2 or x.shape[1] != self.nchannels:
@@ -244,7 +247,9 @@ class Engine:
             x = x.astype(np.float64)
         if out is None:
             out = np.empty(x.shape, dtype=self.dtype)
-        K.process_block(x, out, x.shape[0], *self.state.arrays())
+        if quantizer_in is None:
+            quantizer_in = self._no_tap
+        K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays())
         return out
 
 
@@ -290,7 +295,8 @@ def warm_kernel(out_dtype, in_dtypes=(np.float32, np.float64)):
         st = K.KernelState(1)
         st.iparams[K.IP_BITS] = 16
         st.iparams[K.IP_DITHER] = K.DITHER_TPDF
-        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), 4, *st.arrays())
+        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), np.zeros((4, 1)), 4, *st.arrays())
+        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), np.zeros((0, 1)), 4, *st.arrays())
         _WARM.add(key)
 
 

@@ -227,7 +227,7 @@ def _dither(kind, c, index, rng_words):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag):
+def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag):
     """Requantize ``nframes`` frames of ``x`` into ``y``.
 
     Parameters
@@ -236,6 +236,11 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
         Input in full-scale units.
     y : ndarray, shape (>= nframes, nchannels), integer
         Output words, ``q << out_shift``.
+    vq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), float64
+        Meter tap: receives the input as it enters the quantizer, ``x·gain``
+        in full-scale units (non-finite samples as replaced), so that a meter
+        sees exactly the values the words were made from, gain ramps
+        included.  An array with no rows turns the tap off.
     nframes : int
         Frames to process; 0 is allowed.
     iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag : ndarray
@@ -266,6 +271,7 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
 
     frame0 = clock[CLK_FRAME]
     hpos = clock[CLK_HPOS]
+    tap = vq.shape[0] >= nframes
     # Unless this block continues the last one with the same seed, prime the
     # ring with the blocks of the first frames (one earlier for tpdf-hp); the
     # frame loop then computes each block RNG_LOOKAHEAD_BLOCKS ahead of its use.
@@ -297,6 +303,8 @@ def process_block(x, y, nframes, iparams, fparams, hist, counts, clock, ramp, rn
                     xv = -1.0
                 for k in range(HIST_LEN):
                     hist[c, k] = 0.0
+            if tap:
+                vq[n, c] = xv * gain
             u = xv * gain * scale
             if ntaps > 0:
                 fb = 0.0

@@ -232,7 +232,7 @@ def bench_kernel(seconds, reps, kernel_path=None):
 
     def run_kernel():
         st.reset(0)
-        KM.process_block(x, y_kernel, nframes, *st.arrays())
+        KM.process_block(x, y_kernel, np.empty((0, x.shape[1])), nframes, *st.arrays())
 
     log(f"kernel: {seconds:g} s of stereo audio ({nsamples} samples), best of {reps}, interleaved")
     t0 = time.perf_counter()

@@ -56,7 +56,9 @@ def _view(table, slot, shape, dtype):
 def _run(x, y, n, table, ctl, nch):
     """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring."""
     K.process_block(
-        x, y, n,
+        x, y,
+        _view(table, S.T_XBUF, (0, nch), np.float64),  # meter tap off (no rows)
+        n,
         _view(table, S.T_KIP, (K.IP_LEN,), np.int64),
         _view(table, S.T_KFP, (K.FP_LEN,), np.float64),
         _view(table, S.T_HIST, (nch, K.HIST_LEN), np.float64),
