@@ -9,7 +9,16 @@ from . import pcm
 from .cli_common import add_engine_options, settings_from_args
 from .engine import Engine, log
 from .errors import RtstageError
-from .render import DEFAULT_BLOCKSIZE, SUBTYPES, check_stream_shape, render_file, report_counts
+from .render import DEFAULT_BLOCKSIZE, SUBTYPES, check_stream_shape, render_file, report_counts, shaper_warnings
+
+
+def _input_info(path):
+    import soundfile as sf
+
+    try:
+        return sf.info(path)
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        raise RtstageError(f"cannot read {path}: {exc}") from None
 
 
 def register(subparsers):
@@ -24,6 +33,8 @@ def register(subparsers):
     add_engine_options(p)
     p.add_argument("--blocksize", type=int, default=DEFAULT_BLOCKSIZE, help="frames per block (the output does not depend on it)")
     p.add_argument("--subtype", help=f"output subtype: {', '.join(SUBTYPES)} (default PCM_16 up to 16 bits, else PCM_24)")
+    p.add_argument("--report", metavar="FILE.json", help="write the meter report (added noise, peaks, noise modulation, bit activity; docs/meters.md)")
+    p.add_argument("--automation", metavar="FILE", help="apply timed parameter changes (JSON lines; docs/protocol.md), e.g. a live --automation-log")
     p.set_defaults(handler=run_render)
 
     p = subparsers.add_parser(
@@ -51,7 +62,30 @@ def run_render(args):
     if not os.path.exists(args.input):
         raise RtstageError(f"cannot read {args.input}: no such file")
     settings = settings_from_args(args)
-    engine = render_file(args.input, args.output, settings, blocksize=args.blocksize, subtype=args.subtype, force=args.force)
+    automation = None
+    if args.automation:
+        from .control.automation import load_automation
+
+        info = _input_info(args.input)
+        automation = load_automation(args.automation, samplerate=info.samplerate)
+        if args.report and any(set(values) & {"bits", "dither", "shaper", "dither_scale"} for _, values in automation):
+            raise RtstageError("--report cannot follow automation that changes bits, dither, dither_scale or shaper "
+                               "(the predicted noise would change mid-file); render the sections separately")
+    meters = None
+    if args.report:
+        from .meters import MeterBank
+
+        meters = MeterBank.for_engine
+    result = render_file(args.input, args.output, settings, blocksize=args.blocksize, subtype=args.subtype,
+                         force=args.force, automation=automation, meters=meters)
+    engine = result.engine
+    for message in shaper_warnings(engine.settings, engine.samplerate, result.peak_dbfs):
+        log(message)
+    if args.report:
+        from .meters import write_report
+
+        write_report(args.report, result.meter.report())
+        log(f"wrote the meter report {args.report}")
     report_counts(engine, args.output)
     log(f"wrote {args.output}: {engine.frame} frames, {settings.bits} bits, dither {settings.dither}, "
         f"shaper {settings.shaper_id}, seed {settings.seed}" + ("" if args.seed is not None else " (drawn; pass --seed to reproduce)"))

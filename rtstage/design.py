@@ -94,7 +94,6 @@ import re
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.linalg
 
 from .dither import DITHER_KINDS, DitherKind, feedback_peak_lsb
 from .errors import RtstageError
@@ -335,6 +334,8 @@ def _lpc_from_power(power, ntaps):
     r = np.fft.irfft(power)
     if ntaps == 0:
         return np.zeros(0)
+    import scipy.linalg  # here, not at import: the command line starts faster without scipy
+
     return scipy.linalg.solve_toeplitz(r[:ntaps], r[1 : ntaps + 1])
 
 

@@ -113,7 +113,10 @@ def _progress(total_frames, samplerate):
     )
 
 
-def render_file(input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, force=False, observers=()):
+def render_file(
+    input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, force=False, observers=(),
+    automation=None, meters=None,
+):
     """Requantize ``input_path`` into ``output_path``.
 
     Parameters
@@ -132,12 +135,22 @@ def render_file(input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, 
         Replace an existing output file (never the input itself).
     observers : sequence of callables
         Each is called as ``observer(x_block, words_block, engine)`` after every
-        block (meters, reports).
+        block.
+    automation : list of (int, dict) or None
+        Timed parameter changes ``(frame, values)`` as read by
+        :func:`rtstage.control.automation.load_automation`; blocks are split at
+        those frames, so the words equal a live run that applied them there.
+    meters : callable or None
+        ``meters(engine)`` returns a meter (for instance
+        :meth:`rtstage.meters.MeterBank.for_engine`) whose ``update(vq, words)``
+        receives every block with the quantizer input from the kernel's meter
+        tap; read its report after the render.
 
     Returns
     -------
-    Engine
-        The engine after the last block (settings, counters).
+    RenderResult
+        The engine after the last block (settings, counters), the meter (or
+        None) and the programme's peak at the quantizer input.
     """
     if os.path.exists(output_path):
         if os.path.exists(input_path) and os.path.samefile(input_path, output_path):
@@ -161,6 +174,12 @@ def render_file(input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, 
         if not sf.check_format(fmt, subtype):
             raise RtstageError(f"format {fmt} cannot hold subtype {subtype}")
         engine = Engine(settings, infile.channels, infile.samplerate, container=info.container)
+        meter = meters(engine) if meters else None
+        player = None
+        if automation:
+            from .control.automation import AutomationPlayer
+
+            player = AutomationPlayer(automation)
         out_dir = os.path.dirname(os.path.abspath(output_path))
         fd, tmp_path = tempfile.mkstemp(prefix=".rtstage-", suffix=os.path.splitext(output_path)[1], dir=out_dir)
         os.close(fd)
@@ -168,18 +187,29 @@ def render_file(input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, 
         os.umask(umask)
         os.chmod(tmp_path, 0o666 & ~umask)
         progress = _progress(infile.frames, infile.samplerate)
+        peak = 0.0
         try:
             with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile:
+                inbuf = np.empty((blocksize, infile.channels), dtype=np.float64)
                 words = np.empty((blocksize, infile.channels), dtype=engine.dtype)
+                vq = np.empty((blocksize, infile.channels), dtype=np.float64)
                 task = progress.add_task("render", total=infile.frames) if progress else None
                 if progress:
                     progress.start()
                 while True:
-                    x = infile.read(blocksize, dtype="float64", always_2d=True)
+                    x = infile.read(out=inbuf)  # a view of inbuf, shorter at the end of the file
                     n = x.shape[0]
                     if n == 0:
                         break
-                    block = engine.process(x, out=words[:n])
+                    segments = player.segments(engine.frame, n) if player else ((0, n, None),)
+                    for offset, count, values in segments:
+                        if values:
+                            engine.apply(_settings_with(engine.settings, values))
+                        engine.process(x[offset : offset + count], out=words[offset : offset + count], quantizer_in=vq[offset : offset + count])
+                    block = words[:n]
+                    peak = max(peak, float(np.max(np.abs(vq[:n]), initial=0.0)))
+                    if meter is not None:
+                        meter.update(vq[:n], block)
                     for observer in observers:
                         observer(x, block, engine)
                     outfile.write(words_to_float(block).astype(info.float_out) if info.float_out else block)
@@ -193,7 +223,50 @@ def render_file(input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, 
         finally:
             if progress:
                 progress.stop()
-    return engine
+    if meter is not None and hasattr(meter, "set_engine_counts"):
+        meter.set_engine_counts(engine.clipped, engine.nonfinite)
+    return RenderResult(engine, meter, peak)
+
+
+@dataclass
+class RenderResult:
+    """What :func:`render_file` hands back."""
+
+    engine: Engine
+    meter: object
+    peak: float
+    """Largest magnitude at the quantizer input (after gain), full-scale units."""
+
+    @property
+    def peak_dbfs(self):
+        """``peak`` in dBFS (sample peak; -inf for silence)."""
+        return 20.0 * np.log10(self.peak) if self.peak > 0 else float("-inf")
+
+
+def _settings_with(settings, values):
+    from .params import settings_with
+
+    return settings_with(settings, values)
+
+
+def shaper_warnings(settings, samplerate, peak_dbfs=None):
+    """Warnings for a shaper used off its design rate, or a programme peak that leaves it too little headroom."""
+    messages = []
+    shaper = settings.shaper
+    design_rate = shaper.design_samplerate_hz
+    if design_rate is not None and abs(design_rate - samplerate) > 0.5:
+        from .design import rate_warning
+
+        msg = rate_warning(shaper, samplerate)
+        if msg:
+            messages.append(msg)
+    if shaper.ntaps and peak_dbfs is not None:
+        from .design import headroom_warning
+
+        msg = headroom_warning(shaper, settings.dither, settings.bits, peak_dbfs, settings.dither_scale)
+        if msg:
+            messages.append(msg)
+    return messages
 
 
 def report_counts(engine, what):

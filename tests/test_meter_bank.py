@@ -171,8 +171,11 @@ def test_render_observer_meters_the_file(tmp_path):
             banks.append(MeterBank.for_engine(engine))
         banks[0].observe(block, words, engine)
 
-    engine = render_file(str(src), str(dst), settings, blocksize=1000, observers=(observer,))
+    result = render_file(str(src), str(dst), settings, blocksize=1000, observers=(observer,), meters=MeterBank.for_engine)
+    engine = result.engine
     report = banks[0].report()
+    # The kernel's meter tap (x·gain as the quantizer saw it) gives the same report as the observer's x·gain.
+    assert result.meter.report() == report
     written, _ = sf.read(dst, dtype="int16", always_2d=True)
     for c, channel in enumerate(report["channels"]):
         assert channel["sample_peak_dbfs"] == pytest.approx(20 * np.log10(np.abs(written[:, c].astype(float)).max() / 32768), abs=1e-12)

@@ -196,3 +196,86 @@ def test_console_script_and_module_entry(tmp_path, programme):
     assert "seed 4" in proc.stderr
     proc = subprocess.run([sys.executable, "-m", "rtstage", "render", src, out], capture_output=True, text=True)
     assert proc.returncode == 2 and proc.stderr.count("\n") == 1
+
+
+def test_report_written_and_flat_tpdf_matches_theory(tmp_path, capsys):
+    # 16-bit flat TPDF adds white noise of power Q²/4 (Lipshitz, Wannamaker & Vanderkooy 1992);
+    # over 20 Hz–20 kHz at 48 kHz that is the fraction 19980/24000 of it, read in dBFS with
+    # 0 dBFS = a full-scale sine's RMS (AES17), i.e. level = 10·log10(2 · power).
+    samplerate = 48000
+    rng = np.random.default_rng(5)
+    x = rng.uniform(-0.25, 0.25, (samplerate * 4, 2))
+    src = str(tmp_path / "in.wav")
+    sf.write(src, x, samplerate, subtype="DOUBLE")
+    report_path = str(tmp_path / "r.json")
+    assert main(["render", src, str(tmp_path / "out.wav"), "--seed", "8", "--report", report_path]) == 0
+    import json
+
+    from rtstage.meters import CHANNEL_KEYS
+
+    report = json.load(open(report_path))
+    q = 2.0**-15
+    theory_dbfs = 10 * np.log10(2 * q**2 / 4 * 19980 / 24000)
+    assert len(report["channels"]) == 2
+    for channel in report["channels"]:
+        assert set(CHANNEL_KEYS) <= set(channel)
+        assert channel["added_noise_dbfs"]["unweighted"] == pytest.approx(theory_dbfs, abs=0.1)
+        assert channel["clipped_samples"] == 0
+    assert "wrote the meter report" in capsys.readouterr().err
+
+
+def test_automation_equals_manual_block_split(tmp_path):
+    # Timed changes apply at the named frames: the same words as driving the engine by hand.
+    samplerate = 48000
+    x = np.random.default_rng(6).uniform(-0.5, 0.5, (9000, 2))
+    src = str(tmp_path / "in.wav")
+    sf.write(src, x, samplerate, subtype="DOUBLE")
+    auto = tmp_path / "changes.jsonl"
+    auto.write_text('{"at_frame": 1000, "values": {"gain_db": -6.0}}\n{"at_s": 0.0625, "values": {"bits": 12, "dither": "rpdf"}}\n')
+    out = str(tmp_path / "out.wav")
+    assert main(["render", src, out, "--seed", "21", "--automation", str(auto), "--blocksize", "777"]) == 0
+    engine = Engine(EngineSettings(16, "tpdf", "flat", seed=21), 2, samplerate)
+    want = np.concatenate([
+        engine.process(x[:1000]),
+        (engine.apply(EngineSettings(16, "tpdf", "flat", seed=21, gain_db=-6.0)), engine.process(x[1000:3000]))[1],
+        (engine.apply(EngineSettings(12, "rpdf", "flat", seed=21, gain_db=-6.0)), engine.process(x[3000:]))[1],
+    ])
+    assert_array_equal(sf.read(out, dtype="int16", always_2d=True)[0], want)
+
+
+def test_report_refuses_automation_that_changes_the_quantizer(tmp_path, programme, capsys):
+    x, samplerate = programme
+    src = str(tmp_path / "in.wav")
+    write(src, x, samplerate, "PCM_24")
+    auto = tmp_path / "changes.jsonl"
+    auto.write_text('{"at_frame": 10, "values": {"bits": 8}}\n')
+    message = run_error(["render", src, str(tmp_path / "o.wav"), "--automation", str(auto), "--report", str(tmp_path / "r.json")], capsys)
+    assert "--report cannot follow automation" in message
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text('{"at_frame": 10, "values": {"bits": 99}}\n')
+    assert "bits" in run_error(["render", src, str(tmp_path / "o.wav"), "--automation", str(bad)], capsys)
+
+
+def test_shaper_off_its_design_rate_warns_with_the_right_preset(tmp_path, programme, capsys):
+    # The published sets were designed for 44.1 kHz (Wannamaker 1992); at 48 kHz rtstage names the shipped 48 kHz design.
+    x, samplerate = programme
+    src = str(tmp_path / "in.wav")
+    write(src, x, samplerate, "PCM_24")
+    assert main(["render", src, str(tmp_path / "o.wav"), "--seed", "1", "--shaper", "wannamaker-f9"]) == 0
+    err = capsys.readouterr().err
+    assert "44100" in err or "44.1" in err
+    assert "thr9-48k" in err
+    assert main(["render", src, str(tmp_path / "o2.wav"), "--seed", "1", "--shaper", "thr9-48k"]) == 0
+    assert "designed for" not in capsys.readouterr().err
+
+
+def test_headroom_warning_for_a_hot_programme(tmp_path, capsys):
+    # A 9-tap shaper can add tens of LSB of excursion (design.headroom_lsb); a programme peaking at
+    # -0.001 dBFS leaves less than that at 8 bits, so rtstage warns.
+    samplerate = 44100
+    t = np.arange(samplerate // 4) / samplerate
+    x = np.stack([0.9999 * np.sin(2 * np.pi * 440 * t)] * 2, axis=1)
+    src = str(tmp_path / "in.wav")
+    sf.write(src, x, samplerate, subtype="DOUBLE")
+    assert main(["render", src, str(tmp_path / "o.wav"), "--seed", "1", "--bits", "8", "--shaper", "wannamaker-f9"]) == 0
+    assert "headroom" in capsys.readouterr().err
