@@ -5,6 +5,7 @@ import os
 import sys
 
 from ..cli_common import add_engine_options, settings_from_args
+from ..control.cli import add_control_arguments, add_midi_arguments
 from ..engine import log
 from ..errors import RtstageError
 
@@ -54,6 +55,16 @@ def register(subparsers):
     io.add_argument("--status-file", help="write the final status JSON here instead of stderr")
     io.add_argument("--settle", type=float, default=1.0,
                     help="start-up seconds whose xruns are reported apart (default 1.0)")
+    ctl = run.add_argument_group("control (docs/protocol.md)")
+    add_control_arguments(ctl)
+    ctl.add_argument("--control-rate-hz", type=_positive_float, default=200.0,
+                     help="requests per second each control client may send (default 200)")
+    ctl.add_argument("--control-burst", type=_positive_float, default=400.0,
+                     help="requests a control client may send at once above that rate (default 400)")
+    ctl.add_argument("--automation-log", metavar="FILE",
+                     help="write every change the engine applied, at its sample index, to FILE "
+                     "(re-render offline with: rtstage render --automation FILE)")
+    add_midi_arguments(run.add_argument_group("MIDI control"))
     run.set_defaults(handler=run_command)
 
     devices = subparsers.add_parser("devices", help="list audio devices and host APIs")
@@ -78,8 +89,17 @@ def run_command(args):
     )
     if args.callback == "python":
         log("warning: --callback python runs Python in the audio thread (diagnosis only); expect dropouts")
+    for path, what in ((args.automation_log, "automation log"),):
+        if path and os.path.exists(path) and not args.force:
+            raise RtstageError(f"{what} {path} exists; use --force to replace it")
     engine.prepare()
-    status = engine.run(duration_s=args.duration)
+    try:
+        with ControlWiring(engine, args) as wiring:
+            status = engine.run(duration_s=args.duration)
+    finally:
+        if engine.state != "stopped":
+            engine.stop()
+    status.update(wiring.summary())
     text = json.dumps(status)
     if args.status_file:
         with open(args.status_file, "w") as f:
@@ -87,6 +107,85 @@ def run_command(args):
     else:
         print(text, file=sys.stderr, flush=True)
     return 0
+
+
+class ControlWiring:
+    """The control layer around a prepared :class:`~rtstage.live.supervisor.LiveEngine`, for ``rtstage run``.
+
+    Parameters
+    ----------
+    engine : LiveEngine
+        Prepared engine (sample rate and container known).
+    args : argparse.Namespace
+        ``rtstage run`` options: ``--control-*``, ``--midi-*``, ``--automation-log``.
+
+    Notes
+    -----
+    On entry: opens the automation log, starts the
+    :class:`~rtstage.control.live_target.LiveTarget` housekeeping thread, the
+    socket server (unless ``--control-port 0``) and MIDI (when asked).  On
+    exit, after the engine stopped: MIDI, then the server, then the target
+    (which records what the last blocks applied), then the log.
+    """
+
+    def __init__(self, engine, args):
+        self.engine = engine
+        self.args = args
+        self.writer = None
+        self.target = None
+        self.server = None
+        self.midi = None
+
+    def __enter__(self):
+        from ..control import DEFAULT_CONTROL_PORT
+        from ..control.automation import AutomationWriter
+        from ..control.cli import midi_from_args, server_from_args
+        from ..control.live_target import LiveTarget
+        from ..control.protocol import Controller, PresetStore
+
+        args = self.args
+        try:
+            if args.automation_log:
+                self.writer = AutomationWriter(args.automation_log, self.engine.samplerate)
+            self.target = LiveTarget(self.engine, automation_log=self.writer).start()
+            presets = PresetStore(args.control_preset_dir) if args.control_preset_dir else None
+            controller = Controller(self.target, presets)
+            self.server = server_from_args(args, controller)
+            if self.server is not None:
+                self.server.rate_hz = float(args.control_rate_hz)
+                self.server.burst = float(args.control_burst)
+                try:
+                    self.server.start()
+                except RtstageError as err:
+                    if args.control_port != DEFAULT_CONTROL_PORT:
+                        raise
+                    log(f"warning: control socket off: {err} (choose a port with --control-port)")
+                    self.server = None
+            self.midi = midi_from_args(args, controller)
+            if self.midi is not None:
+                self.midi.start()
+        except BaseException:
+            self.__exit__(None, None, None)
+            raise
+        return self
+
+    def __exit__(self, *exc):
+        for part, stop in ((self.midi, "stop"), (self.server, "stop"), (self.target, "stop"), (self.writer, "close")):
+            if part is not None:
+                try:
+                    getattr(part, stop)()
+                except Exception as err:  # one failing part must not keep the others running
+                    log(f"warning: stopping {type(part).__name__}: {err}")
+        self.midi = self.server = None
+
+    def summary(self):
+        """Status fields of the control layer (for the final status)."""
+        out = {}
+        if self.target is not None:
+            out["control_changes_applied"] = len(self.target.applied)
+        if self.args.automation_log:
+            out["automation_log"] = self.args.automation_log
+        return out
 
 
 def devices_command(args):

@@ -1,0 +1,249 @@
+"""The control layer's target over the live engine: :class:`LiveTarget`.
+
+:class:`LiveTarget` implements :class:`~rtstage.control.target.ControlTarget`
+over a :class:`rtstage.live.supervisor.LiveEngine`, so the socket server, MIDI
+input and presets drive ``rtstage run`` exactly as they drive the offline
+stand-in :class:`~rtstage.control.target.EngineTarget`.
+
+One publication in flight
+-------------------------
+The callback takes parameters from a seqlock block at a block boundary and
+records only the *last* publication it took, with the sample index of that
+block (``ctl[C_APPLIED_SEQ]``, ``ctl[C_APPLIED_FRAME]``).  To know the sample
+index of *every* change without adding anything to the audio path, a
+housekeeping thread (``rtstage-live-target``) keeps at most one publication in
+flight:
+
+1. :meth:`LiveTarget.submit` validates nothing more (the
+   :class:`~rtstage.control.protocol.Controller` did), merges the change into
+   a pending set under a lock, wakes the thread and returns a ticket.  It
+   never touches shared memory and never waits.
+2. The thread publishes the merged pending set as one settings block
+   (:meth:`LiveEngine.set_settings`) when nothing is in flight.
+3. It polls ``applied`` (every ``poll_s``) until the callback has taken that
+   publication, then records ``(frame, values)``: in :attr:`applied`, in the
+   automation log (:class:`~rtstage.control.automation.AutomationWriter`) and
+   for :meth:`wait`.  Changes submitted meanwhile wait in the pending set and
+   go out together in the next publication, all at one block boundary.
+
+So every publication the callback applies is seen with its own sample index,
+and the automation log lists the changes at the frames where they took
+effect, which :func:`~rtstage.control.automation.process_with_automation`
+re-renders bit for bit.  The cost is that two changes less than one block
+apart are applied at the same boundary or at consecutive ones, never lost.
+
+Parameters the kernel does not implement yet (``monitor``, ``mute``,
+``auto_mute``, ``auto_mute_hold_s``, ``error_gain_db``) are validated, kept,
+published (as an unchanged kernel block, so they still get a frame) and
+logged, but do not change the words.
+"""
+
+import threading
+import time
+
+from .. import params
+from ..engine import container_bits, log
+from ..errors import RtstageError
+from .target import ControlTarget
+
+POLL_S = 0.0005
+"""How often the housekeeping thread looks for the applied publication while one is in flight."""
+
+
+def _dbfs_none(nchannels):
+    return [None] * int(nchannels)
+
+
+class LiveTarget(ControlTarget):
+    """Control target over a :class:`~rtstage.live.supervisor.LiveEngine`.
+
+    Parameters
+    ----------
+    engine : rtstage.live.supervisor.LiveEngine
+        A prepared engine (:meth:`LiveEngine.prepare` done: sample rate,
+        container and seed are known).  Only this target may call its
+        :meth:`~LiveEngine.set_settings` from now on.
+    automation_log : rtstage.control.automation.AutomationWriter or None
+        Receives every applied change with its sample index (written by the
+        housekeeping thread, never by the audio thread).
+    apply_timeout_s : float
+        Default wait of :meth:`wait` for the block that applies a change.
+    poll_s : float
+        Poll interval of the housekeeping thread while a publication is in flight.
+
+    Notes
+    -----
+    Call :meth:`start` before the first change and :meth:`stop` after the
+    engine stopped: :meth:`stop` records a publication the callback took in
+    its last blocks and closes nothing it does not own (the automation log
+    stays open for its owner to close).
+    """
+
+    def __init__(self, engine, automation_log=None, apply_timeout_s=1.0, poll_s=POLL_S):
+        if engine.block is None:
+            raise RtstageError("the live engine must be prepared before it can be controlled")
+        self.engine = engine
+        self.automation_log = automation_log
+        self.apply_timeout_s = float(apply_timeout_s)
+        self.poll_s = float(poll_s)
+        self.applied = []
+        """``(frame, values, monotonic_s)`` of every applied change; ``monotonic_s`` is when it was seen applied."""
+        self.publications = 0
+        self._values = params.defaults()
+        self._values.update(params.values_from_settings(engine.settings))
+        self._start_seed = engine.settings.seed
+        self._container = 16 if container_bits(engine.settings.bits) == 16 else 32
+        self._pending = {}
+        self._pending_ticket = 0
+        self._ticket = 0
+        self._applied_ticket = 0
+        self._applied_frame = {}
+        self._inflight = None  # (engine seq, last ticket, values)
+        self._lock = threading.Lock()
+        self._cond = threading.Condition(self._lock)
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._thread = None
+
+    # -- lifecycle ----------------------------------------------------------------------------
+    def start(self):
+        """Start the housekeeping thread; returns self."""
+        if self._thread is None:
+            self._thread = threading.Thread(target=self._run, name="rtstage-live-target", daemon=True)
+            self._thread.start()
+        return self
+
+    def stop(self):
+        """Stop the housekeeping thread after recording what the callback applied last."""
+        self._stop.set()
+        self._wake.set()
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
+        if self._inflight is not None:
+            self._check_applied()
+        with self._cond:
+            self._cond.notify_all()
+
+    def __enter__(self):
+        return self.start()
+
+    def __exit__(self, *exc):
+        self.stop()
+
+    # -- ControlTarget ------------------------------------------------------------------------
+    def get(self):
+        with self._lock:
+            return dict(self._values)
+
+    def check(self, values):
+        bits = values.get("bits")
+        if bits is not None and (16 if container_bits(bits) == 16 else 32) != self._container:
+            word = "at most 16" if self._container == 16 else "17 to 24"
+            raise RtstageError(f"bits={bits} does not fit this stream's {self._container}-bit output ({word} bits)")
+
+    def submit(self, values):
+        self.check(values)
+        with self._cond:
+            self._values.update(values)
+            self._pending.update(values)
+            self._ticket += 1
+            self._pending_ticket = self._ticket
+            ticket = self._ticket
+        self._wake.set()
+        return ticket
+
+    def wait(self, ticket, timeout_s=None):
+        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
+        with self._cond:
+            self._cond.wait_for(lambda: self._applied_ticket >= ticket or self._stop.is_set(), timeout=timeout_s)
+            for t in range(ticket, self._applied_ticket + 1):
+                if t in self._applied_frame:
+                    return self._applied_frame[t]
+            return None
+
+    def status(self):
+        live = self.engine.status()
+        flags = live.get("xruns_after_settle", {})
+        return {
+            "state": "running" if live.get("state") == "running" else "idle",
+            "frame": live.get("engine_frame", 0),
+            "samplerate": live.get("samplerate"),
+            "nchannels": live.get("channels"),
+            "blocksize": live.get("blocksize"),
+            "container_bits": self._container,
+            "uptime_s": live.get("uptime_s", 0.0),
+            "xruns": int(flags.get("flagged_callbacks", 0)),
+            "cpu_load": live.get("cpu_load", 0.0),
+            "seed": self._start_seed,
+            "settings": self.get(),
+            "changes_applied": len(self.applied),
+            "live": live,
+        }
+
+    def meters(self):
+        meters = getattr(self.engine, "meters", None)
+        if callable(meters):
+            return meters()
+        live = self.engine.status()
+        nch = live.get("channels") or 0
+        return {
+            "frame": live.get("engine_frame", 0),
+            "peak_dbfs": _dbfs_none(nch),
+            "rms_dbfs": _dbfs_none(nch),
+            "clipped": live.get("clipped", []),
+            "nonfinite": live.get("nonfinite", []),
+            "levels_available": False,
+        }
+
+    # -- housekeeping -------------------------------------------------------------------------
+    def _run(self):
+        while not self._stop.is_set():
+            if self._inflight is not None:
+                self._check_applied()
+                if self._inflight is not None:
+                    time.sleep(self.poll_s)
+                    continue
+            with self._cond:
+                pending, ticket = self._pending, self._pending_ticket
+                self._pending = {}
+            if pending:
+                self._publish(pending, ticket)
+                continue
+            self._wake.wait(0.1)
+            self._wake.clear()
+
+    def _publish(self, values, ticket):
+        eng = self.engine
+        try:
+            seq = eng.set_settings(params.settings_with(eng.settings, values))
+        except RtstageError as exc:  # checked before submit; a refusal here is a bug, said on stderr
+            log(f"control: change {values} refused by the live engine: {exc}")
+            self._record(ticket, None, values)
+            return
+        self.publications += 1
+        self._inflight = (seq, ticket, values)
+
+    def _check_applied(self):
+        from ..live import shared as S
+
+        seq, ticket, values = self._inflight
+        applied_seq, frame = S.applied(self.engine.block.ctl)
+        if applied_seq >= seq:
+            self._inflight = None
+            self._record(ticket, int(frame), values)
+
+    def _record(self, ticket, frame, values):
+        now = time.monotonic()
+        if frame is not None:
+            self.applied.append((frame, values, now))
+            if self.automation_log is not None:
+                self.automation_log.write(frame, values)
+        with self._cond:
+            for t in range(self._applied_ticket + 1, ticket + 1):
+                self._applied_frame[t] = frame
+            if len(self._applied_frame) > 1024:
+                for t in sorted(self._applied_frame)[:-512]:
+                    del self._applied_frame[t]
+            self._applied_ticket = max(self._applied_ticket, ticket)
+            self._cond.notify_all()
