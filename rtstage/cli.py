@@ -19,6 +19,7 @@ COMMAND_MODULES = (
     "rtstage.cli_shaper",
     "rtstage.control.cli",
     "rtstage.live.cli",
+    "rtstage.cli_watch",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 

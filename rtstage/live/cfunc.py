@@ -4,7 +4,8 @@
 take pending parameters at the block boundary (seqlock), fetch input (the
 device's float32 buffer, the preloaded file, or the generator), run
 :func:`rtstage.kernel.process_block`, write the words to PortAudio's output
-buffer and copy them into the tap ring.  :func:`build_callback` wraps it in a
+buffer, copy them into the tap ring, and copy the meter tap (the
+quantizer's input, ``x·gain``) with the words into the meter ring.  :func:`build_callback` wraps it in a
 numba ``cfunc`` with PortAudio's ``PaStreamCallback`` signature, so PortAudio
 calls machine code directly: no Python, no GIL, no allocation, no lock and no
 I/O inside the callback.
@@ -54,11 +55,11 @@ def _view(table, slot, shape, dtype):
 
 @njit(nogil=True)
 def _run(x, y, n, table, ctl, nch):
-    """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring."""
+    """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring and the meter ring."""
+    meter_on = ctl[S.C_METER_ON] != 0
+    vq = _view(table, S.T_VQ, (ctl[S.C_MAX_FRAMES] if meter_on else 0, nch), np.float64)  # no rows: tap off
     K.process_block(
-        x, y,
-        _view(table, S.T_XBUF, (0, nch), np.float64),  # meter tap off (no rows)
-        n,
+        x, y, vq, n,
         _view(table, S.T_KIP, (K.IP_LEN,), np.int64),
         _view(table, S.T_KFP, (K.FP_LEN,), np.float64),
         _view(table, S.T_HIST, (nch, K.HIST_LEN), np.float64),
@@ -70,6 +71,10 @@ def _run(x, y, n, table, ctl, nch):
     )
     ring = _view(table, S.T_RING, (ctl[S.C_RING_FRAMES], nch), y.dtype)
     S.ring_write(ctl, ring, y, n)
+    if meter_on:
+        mrows = ctl[S.C_MRING_FRAMES]
+        S.meter_ring_write(ctl, _view(table, S.T_MX, (mrows, nch), np.float64), _view(table, S.T_MW, (mrows, nch), y.dtype),
+                           vq, y, n)
 
 
 @njit(nogil=True)

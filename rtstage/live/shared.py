@@ -7,7 +7,9 @@ and reached through one table of addresses (the callback's userdata):
 * the pending parameter block, guarded by a seqlock;
 * the control and counter array ``ctl`` (int64, indices ``C_*``);
 * the source: a preloaded float64 file, or generator parameters and a scratch block;
-* the tap ring: a single-producer single-consumer ring of output words.
+* the tap ring: a single-producer single-consumer ring of output words;
+* the meter tap ``vq`` (the quantizer's input of the current block) and the
+  meter ring: an SPSC ring of (quantizer input, output word) pairs.
 
 Seqlock (parameters, Python → callback)
 ---------------------------------------
@@ -26,6 +28,16 @@ since the start; the slot of frame k is ``k % ring_frames``.  The callback
 writes a block only if it fits whole (otherwise it adds the block's frames to
 ``ctl[C_RING_DROPPED]``), then advances the head after a fence; the consumer
 (:func:`ring_read`) copies up to the head and advances the tail after a fence.
+
+Meter ring (quantizer input and words, callback → meter thread)
+---------------------------------------------------------------
+The same discipline with its own counters (``C_MRING_HEAD``,
+``C_MRING_TAIL``, ``C_MRING_DROPPED``) and two parallel arrays of
+``meter_frames`` rows: ``x·gain`` exactly as the quantizer saw it (float64)
+and the output words.  :func:`meter_ring_write` appends a block whole or
+counts it dropped, so the callback never waits for the meter thread;
+:func:`meter_ring_read` is the consumer.  While no frame is dropped, meter
+ring frame k is the engine's sample index k.
 """
 
 import numpy as np
@@ -53,7 +65,13 @@ T_GENF = 16
 """Generator float parameters: freq_hz, amplitude."""
 T_RING = 17
 """Tap ring, output dtype (ring_frames, nchannels)."""
-T_LEN = 18
+T_VQ = 18
+"""Meter tap of the current block, float64 (max_frames, nchannels): x·gain as quantized."""
+T_MX = 19
+"""Meter ring, quantizer input, float64 (meter_frames, nchannels)."""
+T_MW = 20
+"""Meter ring, output words, output dtype (meter_frames, nchannels)."""
+T_LEN = 21
 
 # --- ctl: layout and configuration (written before start) -------------------------
 C_NCH = 0
@@ -90,9 +108,20 @@ C_LOOPS = 30
 C_CPU_LOAD_PPM = 31
 """PortAudio's CPU load in millionths, written by the stream worker."""
 C_WORKER_PID = 32
+C_MRING_HEAD = 33
+"""Frames written into the meter ring since the start."""
+C_MRING_DROPPED = 34
+"""Frames the meter ring had no room for (dropped whole blocks)."""
 # --- ctl: written by the Python side -----------------------------------------------
 C_PARAM_SEQ = 40
 C_RING_TAIL = 41
+C_MRING_TAIL = 42
+"""Frames the meter thread has read from the meter ring."""
+C_METER_ON = 43
+"""1 when the callback fills the meter ring (set at layout; outside ``ctl[:C_SRC_POS]``, which the worker
+copies into its warm-up block, because that block has no meter ring)."""
+C_MRING_FRAMES = 44
+"""Capacity of the meter ring in frames (set at layout, like ``C_METER_ON``)."""
 C_LEN = 48
 
 IN_DEVICE = 0
@@ -111,7 +140,7 @@ FLAG_COUNTERS = (
 """Status-flag counters by name, as reported in :meth:`LiveEngine.status`."""
 
 
-def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames):
+def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames, meter_frames=0):
     """(slot, shape, dtype) of every shared array, in table order."""
     nch = int(nchannels)
     out_dtype = np.int16 if out_bits == 16 else np.int32
@@ -132,6 +161,9 @@ def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames):
     spec[T_GENW] = ((nch, 4), np.uint64)
     spec[T_GENF] = ((4,), np.float64)
     spec[T_RING] = ((max(int(ring_frames), 1), nch), out_dtype)
+    spec[T_VQ] = ((int(max_frames), nch), np.float64)
+    spec[T_MX] = ((max(int(meter_frames), 1), nch), np.float64)
+    spec[T_MW] = ((max(int(meter_frames), 1), nch), out_dtype)
     offsets = []
     offset = 0
     for shape, dtype in spec:
@@ -160,6 +192,9 @@ class SharedBlock:
         Capacity of the tap ring in frames (0 when there is no tap).
     src_frames : int
         Frames of the preloaded file source (0 when there is none).
+    meter_frames : int
+        Capacity of the meter ring in frames (0: no meter ring, the kernel's
+        meter tap is off).
     buffer : writable buffer or None
         Memory to lay the arrays in (at least :attr:`nbytes`); None allocates.
     init : bool
@@ -167,9 +202,11 @@ class SharedBlock:
         process attaching to existing memory does not).
     """
 
-    def __init__(self, nchannels, out_bits, max_frames, ring_frames=0, src_frames=0, buffer=None, init=True):
+    def __init__(self, nchannels, out_bits, max_frames, ring_frames=0, src_frames=0, meter_frames=0, buffer=None,
+                 init=True):
         self.nchannels = int(nchannels)
-        self.geometry = (self.nchannels, int(out_bits), int(max_frames), int(ring_frames), int(src_frames))
+        self.geometry = (self.nchannels, int(out_bits), int(max_frames), int(ring_frames), int(src_frames),
+                         int(meter_frames))
         self.out_dtype = np.int16 if out_bits == 16 else np.int32
         spec, offsets, self.nbytes = _layout(*self.geometry)
         if buffer is None:
@@ -184,6 +221,7 @@ class SharedBlock:
         self.scratch_ip, self.scratch_fp = arrays[T_SIP], arrays[T_SFP]
         self.source, self.xbuf, self.gen_words, self.gen_fp = arrays[T_SRC], arrays[T_XBUF], arrays[T_GENW], arrays[T_GENF]
         self.ring = arrays[T_RING]
+        self.vq, self.meter_x, self.meter_words = arrays[T_VQ], arrays[T_MX], arrays[T_MW]
         if init:
             self.kernel.rng_tag[:] = -1
             self.ctl[C_NCH] = self.nchannels
@@ -192,6 +230,8 @@ class SharedBlock:
             self.ctl[C_RING_FRAMES] = max(int(ring_frames), 1)
             self.ctl[C_TAP_ON] = 1 if ring_frames > 0 else 0
             self.ctl[C_SRC_FRAMES] = int(src_frames)
+            self.ctl[C_MRING_FRAMES] = max(int(meter_frames), 1)
+            self.ctl[C_METER_ON] = 1 if meter_frames > 0 else 0
         self._arrays = arrays  # kept alive: the table holds raw addresses
         self.table = np.array([a.ctypes.data for a in arrays], dtype=np.int64)
 
@@ -295,4 +335,54 @@ def ring_read(ctl, ring, out):
             slot = 0
     fence()
     ctl[C_RING_TAIL] = tail + n
+    return n
+
+
+@njit(nogil=True, cache=True)
+def meter_ring_write(ctl, ring_x, ring_w, vq, words, nframes):
+    """Producer (callback): append ``nframes`` frames of ``vq`` and ``words`` whole, or count them dropped."""
+    if ctl[C_METER_ON] == 0 or nframes == 0:
+        return
+    cap = ctl[C_MRING_FRAMES]
+    head = ctl[C_MRING_HEAD]
+    fence()
+    tail = ctl[C_MRING_TAIL]
+    if cap - (head - tail) < nframes:
+        ctl[C_MRING_DROPPED] += nframes
+        return
+    nch = ring_x.shape[1]
+    slot = head % cap
+    for n in range(nframes):
+        for c in range(nch):
+            ring_x[slot, c] = vq[n, c]
+            ring_w[slot, c] = words[n, c]
+        slot += 1
+        if slot == cap:
+            slot = 0
+    fence()
+    ctl[C_MRING_HEAD] = head + nframes
+
+
+@njit(nogil=True, cache=True)
+def meter_ring_read(ctl, ring_x, ring_w, out_x, out_w, start):
+    """Consumer (meter thread): copy up to ``out_x.shape[0] - start`` frames into rows ``start..`` of the outputs.
+
+    Returns the number of frames copied; the tail advances past them.
+    """
+    head = ctl[C_MRING_HEAD]
+    fence()
+    tail = ctl[C_MRING_TAIL]
+    cap = ctl[C_MRING_FRAMES]
+    n = min(head - tail, out_x.shape[0] - start)
+    nch = ring_x.shape[1]
+    slot = tail % cap
+    for k in range(start, start + n):
+        for c in range(nch):
+            out_x[k, c] = ring_x[slot, c]
+            out_w[k, c] = ring_w[slot, c]
+        slot += 1
+        if slot == cap:
+            slot = 0
+    fence()
+    ctl[C_MRING_TAIL] = tail + n
     return n

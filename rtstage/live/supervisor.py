@@ -63,6 +63,8 @@ RETRY_DELAYS_S = (0.25, 0.5, 1.0, 2.0)
 POLL_S = 0.02
 TAP_RING_S = 2.0
 """Capacity of the tap ring, in seconds of audio."""
+METER_RING_S = 1.0
+"""Capacity of the meter ring, in seconds of audio."""
 
 
 class LiveEngine:
@@ -104,6 +106,9 @@ class LiveEngine:
         Benchmark only: run a busy pure-Python thread inside the stream
         worker, beside the callback.
     """
+
+    meter_ring_s = METER_RING_S
+    """Meter ring capacity in seconds; set to 0 before :meth:`prepare` to run without meters."""
 
     def __init__(self, settings, device=None, input_device=None, output_device=None, hostapi=None, samplerate=None,
                  blocksize=DEFAULT_BLOCKSIZE, channels=None, latency=None, source=None, loop=False, tap=None,
@@ -169,7 +174,8 @@ class LiveEngine:
         self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
         ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path else 0
         src_frames = 0 if data is None else data.shape[0]
-        geometry = (self.channels, self.out_bits, self.blocksize, ring_frames, src_frames)
+        meter_frames = max(int(self.meter_ring_s * self.samplerate), 8 * self.blocksize) if self.meter_ring_s > 0 else 0
+        geometry = (self.channels, self.out_bits, self.blocksize, ring_frames, src_frames, meter_frames)
         nbytes = S._layout(*geometry)[2]
         shm_dir = "/dev/shm" if os.path.isdir("/dev/shm") else None
         fd, self._shm_path = tempfile.mkstemp(prefix="rtstage-live-", dir=shm_dir)
@@ -307,6 +313,7 @@ class LiveEngine:
             self.prepare()
         if self.tap is not None:
             self.tap.start()
+        self._start_meters()
         self._open()
         self._start_time = time.monotonic()
         self.state = "running"
@@ -451,9 +458,12 @@ class LiveEngine:
         self.state = "stopped"
         tap_summary = self.tap.close() if self.tap is not None else None
         self.tap = None
+        meter_final = self._stop_meters()
         status = self.status()
         if tap_summary is not None:
             status["tap"] = tap_summary
+        if meter_final is not None:
+            status["meters"] = meter_final
         self._final_tap = tap_summary
         gc.unfreeze()
         if self._shm_path is not None:
@@ -540,3 +550,62 @@ class LiveEngine:
             "settings_applied": list(self.applied_log),
         }
         return result
+
+    # --- meters (rtstage.live.meterthread) --------------------------------------------
+    def _start_meters(self):
+        """Start the meter thread on the meter ring (once; it carries on across stream restarts)."""
+        if getattr(self, "meter_thread", None) is not None or self.block.counter(S.C_METER_ON) == 0:
+            return
+        from .meterthread import MeterThread
+
+        shaper = self.settings.shaper
+        self._meter_shapers = {tuple(shaper.coefs): shaper.id}
+        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name).start()
+
+    def _meter_shaper_name(self, coefs):
+        shaper = self.settings.shaper
+        if hasattr(shaper, "coefs"):
+            self._meter_shapers.setdefault(tuple(shaper.coefs), shaper.id)
+        return self._meter_shapers.get(tuple(coefs))
+
+    def _stop_meters(self):
+        """Stop the meter thread after a last drain; returns :meth:`meters` (None without meters)."""
+        thread = getattr(self, "meter_thread", None)
+        if thread is None:
+            return None
+        thread.stop()
+        if thread.error is not None:
+            log(f"meter thread failed: {thread.error}")
+        return self.meters()
+
+    def meters(self):
+        """The latest meter snapshot with engine health (safe to call from any thread).
+
+        Returns
+        -------
+        dict or None
+            The fields of :meth:`rtstage.meters.MeterBank.report` (since the
+            last change of word length, dither or shaper), ``frame``,
+            ``peak_dbfs``, ``rms_dbfs``, ``clipped``, ``nonfinite`` (see
+            :mod:`rtstage.live.meterthread`), and engine health: ``xruns``
+            (callbacks with a status flag set), ``xruns_after_settle``,
+            ``cpu_load``, ``cpu_load_max``, ``restarts``.  Before the first
+            snapshot, or without meters, only ``frame`` (0), ``peak_dbfs``,
+            ``rms_dbfs`` (None), ``clipped``, ``nonfinite`` and the health.
+        """
+        thread = getattr(self, "meter_thread", None)
+        snap = thread.latest() if thread is not None else None
+        status = self.status()
+        if snap is None:
+            snap = {"frame": 0, "peak_dbfs": [None] * (self.channels or 0), "rms_dbfs": [None] * (self.channels or 0),
+                    "clipped": status["clipped"], "nonfinite": status["nonfinite"]}
+        out = dict(snap)
+        out.update({
+            "state": status["state"],
+            "xruns": status["xruns"]["flagged_callbacks"],
+            "xruns_after_settle": status["xruns_after_settle"]["flagged_callbacks"],
+            "cpu_load": status["cpu_load"],
+            "cpu_load_max": status["cpu_load_max"],
+            "restarts": status["restarts"],
+        })
+        return out
