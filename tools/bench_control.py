@@ -9,7 +9,15 @@ live callback.  Goal: p99 ≤ one block period + 1 ms.
 
 Usage::
 
-    python tools/bench_control.py [--trials 300] [--blocksize 256] [--samplerate 48000] [--no-midi]
+    python tools/bench_control.py [--trials 300] [--blocksize 256] [--samplerate 48000] [--no-midi] [--live]
+
+``--live`` measures the real engine instead: a :class:`~rtstage.live.supervisor.LiveEngine`
+on a private JACK dummy server (64-frame period), driven through
+:class:`~rtstage.control.live_target.LiveTarget`.  There the time of the block
+that applied a change is when the target's housekeeping thread saw the
+callback's applied record (it polls every 0.5 ms while a change is in flight;
+the callback writes the record at the start of the block), so the figure is
+an upper bound by at most that poll interval.
 
 Prints one JSON object per transport on stdout (p50, p99, max in ms, the goal,
 and p99/goal as a ratio measured in this run); progress on stderr.
@@ -20,6 +28,7 @@ import json
 import os
 import subprocess
 import sys
+import threading
 import time
 
 import numpy as np
@@ -152,13 +161,117 @@ def bench_midi(trials, blocksize, samplerate):
                                                        "jack_period_frames": 64}
 
 
+class _LiveStack:
+    """LiveEngine + LiveTarget + Controller + ControlServer (port 0) on the JACK server named in the environment."""
+
+    def __init__(self, blocksize, samplerate):
+        from rtstage.control.live_target import LiveTarget
+        from rtstage.control.protocol import Controller
+        from rtstage.control.server import ControlServer
+        from rtstage.live.supervisor import LiveEngine
+
+        settings = EngineSettings(bits=16, dither="tpdf", seed=1)
+        self.engine = LiveEngine(settings, samplerate=samplerate, blocksize=blocksize, source="tone:level_dbfs=-30")
+        self.engine.prepare()
+        self.target = LiveTarget(self.engine).start()
+        self.controller = Controller(self.target)
+        self.server = ControlServer(self.controller, port=0, rate_hz=1e6, burst=1e6, logger=lambda m: None).start()
+        self._thread = threading.Thread(target=self.engine.run, kwargs={"install_signals": False}, daemon=True)
+
+    def __enter__(self):
+        self._thread.start()
+        deadline = time.monotonic() + 60
+        while self.engine.state != "running" and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(0.5)
+        return self
+
+    def __exit__(self, *exc):
+        self.engine.request_stop()
+        self._thread.join(30)
+        self.server.stop()
+        self.target.stop()
+
+    def xruns(self):
+        return self.engine.status()["xruns_after_settle"]["output_underflow"]
+
+
+def bench_live_tcp(trials, blocksize, samplerate):
+    """Latencies (s) of ``set`` requests over 127.0.0.1 TCP to the live engine on a JACK dummy server."""
+    from rtstage.live.jackserver import JackDummyServer
+
+    period_s = blocksize / samplerate
+    with JackDummyServer(samplerate=samplerate, period_frames=64) as server:
+        env = server.client_env()
+        os.environ.update({k: v for k, v in env.items() if k.startswith("JACK_")})
+        with _LiveStack(blocksize, samplerate) as stack:
+            result = subprocess.run([sys.executable, "-c", _TCP_CLIENT, str(stack.server.port), str(trials),
+                                     str(period_s)], stdout=subprocess.PIPE, check=True, timeout=600)
+            send_times = [float(v) for v in result.stdout.split()]
+            time.sleep(0.05)
+            applied = list(stack.target.applied)
+            xruns = stack.xruns()
+    return _latencies(send_times, applied), period_s, {"engine": "live", "output_underflows": xruns,
+                                                       "sent": len(send_times), "applied": len(applied),
+                                                       "jack_period_frames": 64}
+
+
+def bench_live_midi(trials, blocksize, samplerate):
+    """Latencies (s) of control changes over JACK MIDI to the live engine (probe in another process)."""
+    from rtstage.control.midi import MidiControl, map_from_dict
+    from rtstage.live.jackserver import JackDummyServer
+
+    period_s = blocksize / samplerate
+    with JackDummyServer(samplerate=samplerate, period_frames=64) as server:
+        env = server.client_env()
+        os.environ.update({k: v for k, v in env.items() if k.startswith("JACK_")})
+        with _LiveStack(blocksize, samplerate) as stack:
+            probe = subprocess.Popen([sys.executable, "-c", _MIDI_CLIENT, str(trials), str(period_s)], env=env,
+                                     stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+            try:
+                assert probe.stdout.readline().strip() == "ready"
+                bench_map = map_from_dict({"control": [{"param": "bits", "channel": 1, "cc": 102, "takeover": "jump"}]})
+                midi = MidiControl(stack.controller, bench_map, api="jack", in_port="bench knobs", poll_s=0.1)
+                with midi:
+                    deadline = time.monotonic() + 5.0
+                    while midi.in_connected is None and time.monotonic() < deadline:
+                        time.sleep(0.01)
+                    time.sleep(0.2)
+                    probe.stdin.write("go\n")
+                    probe.stdin.flush()
+                    send_times = [float(probe.stdout.readline()) for _ in range(trials)]
+                    time.sleep(0.05)
+                    applied = list(stack.target.applied)
+                probe.stdin.write("done\n")
+                probe.stdin.flush()
+                probe.wait(timeout=10)
+            finally:
+                if probe.poll() is None:
+                    probe.kill()
+                    probe.wait()
+            xruns = stack.xruns()
+    return _latencies(send_times, applied), period_s, {"engine": "live", "output_underflows": xruns,
+                                                       "sent": len(send_times), "applied": len(applied),
+                                                       "jack_period_frames": 64}
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--trials", type=int, default=300)
     parser.add_argument("--blocksize", type=int, default=256)
     parser.add_argument("--samplerate", type=int, default=48000)
     parser.add_argument("--no-midi", action="store_true")
+    parser.add_argument("--live", action="store_true", help="measure the live engine on a JACK dummy server")
     args = parser.parse_args(argv)
+    if args.live:
+        print("bench_control: live tcp ...", file=sys.stderr, flush=True)
+        lat, period_s, extra = bench_live_tcp(args.trials, args.blocksize, args.samplerate)
+        print(json.dumps(_summary("live-tcp", lat, period_s, extra)), flush=True)
+        if not args.no_midi:
+            print("bench_control: live jack midi ...", file=sys.stderr, flush=True)
+            lat, period_s, extra = bench_live_midi(args.trials, args.blocksize, args.samplerate)
+            print(json.dumps(_summary("live-jack-midi", lat, period_s, extra)), flush=True)
+        return 0
     print("bench_control: tcp ...", file=sys.stderr, flush=True)
     lat, period_s, extra = bench_tcp(args.trials, args.blocksize, args.samplerate)
     print(json.dumps(_summary("tcp", lat, period_s, extra)), flush=True)

@@ -16,11 +16,13 @@ flight:
 
 1. :meth:`LiveTarget.submit` validates nothing more (the
    :class:`~rtstage.control.protocol.Controller` did), merges the change into
-   a pending set under a lock, wakes the thread and returns a ticket.  It
-   never touches shared memory and never waits.
-2. The thread publishes the merged pending set as one settings block
-   (:meth:`LiveEngine.set_settings`) when nothing is in flight.
-3. It polls ``applied`` (every ``poll_s``) until the callback has taken that
+   a pending set under a lock and returns a ticket.  It never waits.
+2. When nothing is in flight, the merged pending set is published at once,
+   by :meth:`submit` itself, as one settings block
+   (:meth:`LiveEngine.set_settings`: encode, then the seqlock write; tens of
+   microseconds, no waiting on the audio thread).  Otherwise the
+   housekeeping thread publishes it as soon as the one in flight is applied.
+3. The thread polls ``applied`` (every ``poll_s``) until the callback has taken that
    publication, then records ``(frame, values)``: in :attr:`applied`, in the
    automation log (:class:`~rtstage.control.automation.AutomationWriter`) and
    for :meth:`wait`.  Changes submitted meanwhile wait in the pending set and
@@ -99,6 +101,7 @@ class LiveTarget(ControlTarget):
         self._applied_ticket = 0
         self._applied_frame = {}
         self._inflight = None  # (engine seq, last ticket, values)
+        self._pub_lock = threading.Lock()  # serializes publication and its bookkeeping
         self._lock = threading.Lock()
         self._cond = threading.Condition(self._lock)
         self._wake = threading.Event()
@@ -150,6 +153,7 @@ class LiveTarget(ControlTarget):
             self._ticket += 1
             self._pending_ticket = self._ticket
             ticket = self._ticket
+        self._try_publish()
         self._wake.set()
         return ticket
 
@@ -204,34 +208,43 @@ class LiveTarget(ControlTarget):
                 if self._inflight is not None:
                     time.sleep(self.poll_s)
                     continue
-            with self._cond:
-                pending, ticket = self._pending, self._pending_ticket
-                self._pending = {}
-            if pending:
-                self._publish(pending, ticket)
+            if self._try_publish():
                 continue
             self._wake.wait(0.1)
             self._wake.clear()
 
-    def _publish(self, values, ticket):
-        eng = self.engine
-        try:
-            seq = eng.set_settings(params.settings_with(eng.settings, values))
-        except RtstageError as exc:  # checked before submit; a refusal here is a bug, said on stderr
-            log(f"control: change {values} refused by the live engine: {exc}")
-            self._record(ticket, None, values)
-            return
-        self.publications += 1
-        self._inflight = (seq, ticket, values)
+    def _try_publish(self):
+        """Publish the pending changes if nothing is in flight; True when it published."""
+        with self._pub_lock:
+            if self._inflight is not None or self._stop.is_set():
+                return False
+            with self._cond:
+                values, ticket = self._pending, self._pending_ticket
+                self._pending = {}
+            if not values:
+                return False
+            eng = self.engine
+            try:
+                seq = eng.set_settings(params.settings_with(eng.settings, values))
+            except RtstageError as exc:  # checked before submit; a refusal here is a bug, said on stderr
+                log(f"control: change {values} refused by the live engine: {exc}")
+                self._record(ticket, None, values)
+                return False
+            self.publications += 1
+            self._inflight = (seq, ticket, values)
+            return True
 
     def _check_applied(self):
         from ..live import shared as S
 
-        seq, ticket, values = self._inflight
-        applied_seq, frame = S.applied(self.engine.block.ctl)
-        if applied_seq >= seq:
-            self._inflight = None
-            self._record(ticket, int(frame), values)
+        with self._pub_lock:
+            if self._inflight is None:
+                return
+            seq, ticket, values = self._inflight
+            applied_seq, frame = S.applied(self.engine.block.ctl)
+            if applied_seq >= seq:
+                self._inflight = None
+                self._record(ticket, int(frame), values)
 
     def _record(self, ticket, frame, values):
         now = time.monotonic()
