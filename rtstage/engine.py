@@ -1,8 +1,10 @@
 """The engine: validated settings, prepared state, block processing.
 
 Three phases, as in any real-time processor: construct an :class:`Engine`
-for a channel count and sample rate (everything is sized and the kernel is
-compiled and warmed there), call :meth:`Engine.process` on blocks of any size
+for a channel count and sample rate (everything is sized there; the kernel is
+compiled, or loaded from numba's cache, at the first block: the offline
+drivers do not need it earlier, and the live engine warms its own compiled
+callback before the stream opens), call :meth:`Engine.process` on blocks of any size
 (zero included), and read its counters.  The offline renderer, the pipe and
 the live callback all drive the same compiled :func:`rtstage.kernel.process_block`.
 
@@ -190,7 +192,6 @@ class Engine:
         self._no_tap = np.empty((0, self.nchannels), dtype=np.float64)
         self.apply(self.settings, ramp=False)
         self.state.reset(start_frame)
-        warm_kernel(self.dtype)
 
     @property
     def out_shift(self):
@@ -281,23 +282,6 @@ def encode_params(settings, samplerate, out_shift, iparams, fparams):
     fparams[K.FP_DITHER_SCALE] = settings.dither_scale
     fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
     fparams[K.FP_GAIN] = 10.0 ** (settings.gain_db / 20.0)
-
-
-_WARM = set()
-
-
-def warm_kernel(out_dtype, in_dtypes=(np.float32, np.float64)):
-    """Compile (or load from the numba cache) and run the kernel once for these types."""
-    for in_dtype in in_dtypes:
-        key = (np.dtype(in_dtype), np.dtype(out_dtype))
-        if key in _WARM:
-            continue
-        st = K.KernelState(1)
-        st.iparams[K.IP_BITS] = 16
-        st.iparams[K.IP_DITHER] = K.DITHER_TPDF
-        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), np.zeros((4, 1)), 4, *st.arrays())
-        K.process_block(np.zeros((4, 1), in_dtype), np.zeros((4, 1), out_dtype), np.zeros((0, 1)), 4, *st.arrays())
-        _WARM.add(key)
 
 
 def log(message):
