@@ -53,6 +53,8 @@ def register(subparsers):
     io.add_argument("--tap", help="write exactly the words sent to the device into this file (gaps in TAP.gaps.json)")
     io.add_argument("--duration", type=_positive_float, help="stop after this many seconds")
     io.add_argument("--status-file", help="write the final status JSON here instead of stderr")
+    io.add_argument("--quiet", action="store_true",
+                    help="no meter display (by default a live display on a terminal, one status line a second otherwise)")
     io.add_argument("--settle", type=float, default=1.0,
                     help="start-up seconds whose xruns are reported apart (default 1.0)")
     ctl = run.add_argument_group("control (docs/protocol.md)")
@@ -95,7 +97,13 @@ def run_command(args):
     engine.prepare()
     try:
         with ControlWiring(engine, args) as wiring:
-            status = engine.run(duration_s=args.duration)
+            from .display import LiveDisplay
+
+            display = LiveDisplay(engine, refresh_hz=10, quiet=args.quiet).start()
+            try:
+                status = engine.run(duration_s=args.duration)
+            finally:
+                display.stop()
     finally:
         if engine.state != "stopped":
             engine.stop()

@@ -146,7 +146,7 @@ def render_text(snap, width=BAR_WIDTH):
 
 
 def status_line(snap):
-    """One compact line for a log (no terminal): time, per-channel peak / A-weighted noise / clips, health."""
+    """One compact line for a log (no terminal): time, per-channel peak / A-weighted noise / noise modulation / clips, health."""
     if not snap:
         return "rtstage: meters: waiting"
     peaks = snap.get("peak_dbfs") or []
@@ -160,7 +160,7 @@ def status_line(snap):
         ch = channels[c] if c < len(channels) else {}
         text = f"{_channel_name(c, nch)} pk {_fmt(peaks[c], 0)}"
         if ch:
-            text += f" nA {_fmt(_noise(ch, 'a_weighted'), 0)}"
+            text += f" nA {_fmt(_noise(ch, 'a_weighted'), 0)} mod {_fmt(ch.get('noise_modulation_db'), 0)}"
         text += f" clip {clipped[c] if c < len(clipped) else 0}"
         parts.append(text)
     if "cpu_load" in snap:
