@@ -16,6 +16,7 @@ from .errors import RtstageError
 COMMAND_MODULES = (
     "rtstage.cli_render",
     "rtstage.cli_demo",
+    "rtstage.cli_report",
     "rtstage.cli_shaper",
     "rtstage.control.cli",
     "rtstage.live.cli",

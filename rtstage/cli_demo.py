@@ -250,26 +250,11 @@ def run_live(args):
 
 
 def _plots(out, reports):
-    """Error spectra of the passes against their predicted curves (needs matplotlib; skipped quietly without)."""
+    """The meter figures of each pass into ``out/pass-N/`` (needs matplotlib; skipped with a note without)."""
     try:
-        import matplotlib
+        from .meters.plots import write_plots
 
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        log("matplotlib is not installed: no plots (pip install 'rtstage[plot]')")
-        return
-    fig, ax = plt.subplots(figsize=(8, 4.5))
-    for report in reports:
-        f = np.asarray(report["error_spectrum_bands_hz"], dtype=float)
-        measured = np.asarray([np.nan if v is None else v for v in report["channels"][0]["error_spectrum_dbfs"]], dtype=float)
-        predicted = np.asarray([np.nan if v is None else v for v in report["predicted_spectrum_dbfs"]], dtype=float)
-        line, = ax.semilogx(f, measured, marker="o", ms=3, label=f"{report['pass']} measured")
-        ax.semilogx(f, predicted, ls="--", color=line.get_color(), label=f"{report['pass']} predicted")
-    ax.set_xlabel("frequency, Hz (third-octave bands)")
-    ax.set_ylabel("added noise per band, dBFS")
-    ax.grid(True, which="both", alpha=0.3)
-    ax.legend(fontsize=7)
-    fig.tight_layout()
-    fig.savefig(os.path.join(out, "error-spectra.png"), dpi=110)
-    plt.close(fig)
+        for i, report in enumerate(reports):
+            write_plots(report, os.path.join(out, f"pass-{i + 1}"))
+    except RtstageError as exc:
+        log(f"no plots: {exc}")

@@ -34,6 +34,7 @@ def register(subparsers):
     p.add_argument("--blocksize", type=int, default=DEFAULT_BLOCKSIZE, help="frames per block (the output does not depend on it)")
     p.add_argument("--subtype", help=f"output subtype: {', '.join(SUBTYPES)} (default PCM_16 up to 16 bits, else PCM_24)")
     p.add_argument("--report", metavar="FILE.json", help="write the meter report (added noise, peaks, noise modulation, bit activity; docs/meters.md)")
+    p.add_argument("--plot", metavar="DIR", help="write the meter figures (PNG, needs matplotlib) into DIR; see 'rtstage report'")
     p.add_argument("--automation", metavar="FILE", help="apply timed parameter changes (JSON lines; docs/protocol.md), e.g. a live --automation-log")
     p.set_defaults(handler=run_render)
 
@@ -68,11 +69,11 @@ def run_render(args):
 
         info = _input_info(args.input)
         automation = load_automation(args.automation, samplerate=info.samplerate)
-        if args.report and any(set(values) & {"bits", "dither", "shaper", "dither_scale"} for _, values in automation):
-            raise RtstageError("--report cannot follow automation that changes bits, dither, dither_scale or shaper "
+        if (args.report or args.plot) and any(set(values) & {"bits", "dither", "shaper", "dither_scale"} for _, values in automation):
+            raise RtstageError("--report and --plot cannot follow automation that changes bits, dither, dither_scale or shaper "
                                "(the predicted noise would change mid-file); render the sections separately")
     meters = None
-    if args.report:
+    if args.report or args.plot:
         from .meters import MeterBank
 
         meters = MeterBank.for_engine
@@ -86,6 +87,10 @@ def run_render(args):
 
         write_report(args.report, result.meter.report())
         log(f"wrote the meter report {args.report}")
+    if args.plot:
+        from .meters.plots import write_plots
+
+        log(f"wrote {', '.join(write_plots(result.meter.report(), args.plot))}")
     report_counts(engine, args.output)
     log(f"wrote {args.output}: {engine.frame} frames, {settings.bits} bits, dither {settings.dither}, "
         f"shaper {settings.shaper_id}, seed {settings.seed}" + ("" if args.seed is not None else " (drawn; pass --seed to reproduce)"))

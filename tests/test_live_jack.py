@@ -204,5 +204,10 @@ def test_busy_python_thread_does_not_raise_underflows(jack_server):
     quiet, loaded, python = totals["rtstage+procload"], totals["rtstage+load"], totals["passthrough+load"]
     # Flags stay at the no-load level, within the scheduling noise of a shared 2-core machine (factor 2 + 20).
     assert loaded["flags"] <= 2 * quiet["flags"] + 20
-    # Sensitivity: a Python callback under the same load finishes late far more often.
-    assert python["running"] >= 10 * (loaded["running"] / 2 + 1)
+    # Sensitivity: a Python callback under the same load is flagged far more often, and the
+    # server's log blames the client (callback not started or still running at the deadline)
+    # several times as often.  Measured here: flags 708 vs 146, client-late 1243 vs 205; the
+    # margins below leave room for a busier CI machine.
+    assert python["flags"] >= 2 * loaded["flags"]
+    late = lambda t: t["not_started"] + t["running"]  # noqa: E731
+    assert late(python) >= 3 * late(loaded)

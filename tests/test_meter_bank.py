@@ -183,3 +183,33 @@ def test_render_observer_meters_the_file(tmp_path):
         assert channel["clipped_samples"] == engine.clipped[c] == 0
         for key, diff in channel["noise_difference_db"].items():
             assert abs(diff) < 0.2, key
+
+
+def test_headroom_histogram_and_modulation_bins_in_the_report():
+    # The bank's headroom figures are design.headroom_lsb / headroom_dbfs (the engine's authority); its
+    # error histogram holds every sample, inside the range that bound allows; the noise-modulation bins
+    # are the means the reading is made from (10·log10(max/min) of them).
+    from rtstage import design
+    from rtstage.shapers import get_shaper
+
+    shaper = get_shaper("wannamaker-f9")
+    x = np.random.default_rng(4).uniform(-0.5, 0.5, (1 << 16, 2))
+    engine = Engine(EngineSettings(bits=12, dither="tpdf", shaper=shaper, seed=9), 2, SAMPLERATE)
+    vq = np.empty_like(x)
+    words = engine.process(x, quantizer_in=vq)
+    bank = MeterBank.for_engine(engine, modulation_min_samples=100)
+    bank.update(vq, words)
+    report = bank.report()
+    assert report["shaped_error_headroom_lsb"] == design.headroom_lsb(shaper, "tpdf")
+    assert report["peak_limit_dbfs"] == pytest.approx(design.headroom_dbfs(shaper, "tpdf", 12))
+    for ch in report["channels"]:
+        hist = ch["error_histogram"]
+        assert sum(hist["counts"]) == x.shape[0] and hist["outside"] == 0
+        assert len(hist["edges_lsb"]) == len(hist["counts"]) + 1
+        bins = np.array([b for b in ch["noise_modulation_bins_lsb2"] if b is not None])
+        assert ch["noise_modulation_db"] == pytest.approx(10 * np.log10(bins.max() / bins.min()))
+        # -6 dBFS programme: far below the limit 12-bit f9 shaping leaves.
+        assert ch["headroom_exceeded"] is False
+    hot = MeterBank.for_engine(engine)
+    hot.update(np.full((64, 2), 0.999), np.zeros((64, 2), dtype=np.int16))
+    assert all(ch["headroom_exceeded"] for ch in hot.report()["channels"])

@@ -250,7 +250,7 @@ def test_report_refuses_automation_that_changes_the_quantizer(tmp_path, programm
     auto = tmp_path / "changes.jsonl"
     auto.write_text('{"at_frame": 10, "values": {"bits": 8}}\n')
     message = run_error(["render", src, str(tmp_path / "o.wav"), "--automation", str(auto), "--report", str(tmp_path / "r.json")], capsys)
-    assert "--report cannot follow automation" in message
+    assert "--report and --plot cannot follow automation" in message
     bad = tmp_path / "bad.jsonl"
     bad.write_text('{"at_frame": 10, "values": {"bits": 99}}\n')
     assert "bits" in run_error(["render", src, str(tmp_path / "o.wav"), "--automation", str(bad)], capsys)

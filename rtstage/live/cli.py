@@ -95,6 +95,10 @@ def run_command(args):
         if path and os.path.exists(path) and not args.force:
             raise RtstageError(f"{what} {path} exists; use --force to replace it")
     engine.prepare()
+    from ..render import shaper_warnings
+
+    for message in shaper_warnings(engine.settings, engine.samplerate):
+        log(f"warning: {message}")
     try:
         with ControlWiring(engine, args) as wiring:
             from .display import LiveDisplay
@@ -108,6 +112,7 @@ def run_command(args):
         if engine.state != "stopped":
             engine.stop()
     status.update(wiring.summary())
+    _headroom_warning(status.get("meters"))
     text = json.dumps(status)
     if args.status_file:
         with open(args.status_file, "w") as f:
@@ -115,6 +120,18 @@ def run_command(args):
     else:
         print(text, file=sys.stderr, flush=True)
     return 0
+
+
+def _headroom_warning(meters):
+    """Warn when the programme's peak left the shaped error less headroom than it needs (from the final meters)."""
+    if not meters or not meters.get("channels"):
+        return
+    hot = [c + 1 for c, ch in enumerate(meters["channels"]) if ch.get("headroom_exceeded")]
+    if hot:
+        limit = meters.get("peak_limit_dbfs")
+        where = "no level is safe at this word length" if limit is None else f"keep peaks at or below {limit:.2f} dBFS"
+        log(f"warning: channel(s) {', '.join(map(str, hot))} peaked above what shaper '{meters.get('shaper')}' "
+            f"with {meters.get('dither')} dither leaves room for ({where}); expect clipped samples")
 
 
 class ControlWiring:

@@ -35,6 +35,19 @@ from .spectrum import WelchSpectrum, band_powers, fractional_octave_bands
 from .truepeak import OVERSAMPLING, PeakMeter
 
 
+HISTOGRAM_BINS = 128
+"""Bins of the added-error histogram."""
+
+
+def _exceeds(frames, peak_dbfs, limit_dbfs):
+    """True when the programme's peak is above the level the shaped error leaves room for (None: no room at all)."""
+    if not frames:
+        return False
+    if limit_dbfs is None:
+        return True
+    return peak_dbfs is not None and peak_dbfs > limit_dbfs
+
+
 def _db_difference(a, b):
     return None if a is None or b is None else a - b
 
@@ -109,6 +122,18 @@ class MeterBank:
         self._engine_counts = None
         self.frames = 0
 
+        # Headroom the shaped error needs (the same authority the engine's warnings use), and
+        # a histogram of the added error over the range that bound allows.
+        from ..design import headroom_dbfs, headroom_lsb
+        from ..shapers import Shaper
+
+        shaper = Shaper(shaper_id or "custom", self.shaper_coefs)
+        self.headroom_lsb = headroom_lsb(shaper, self.dither_id, self.dither_scale)
+        self.peak_limit_dbfs = headroom_dbfs(shaper, self.dither_id, self.bits, self.dither_scale)
+        span = max(4.0, math.ceil(min(self.headroom_lsb, 1e6)))
+        self.histogram_edges_lsb = np.linspace(-span, span, HISTOGRAM_BINS + 1)
+        self._histogram = np.zeros((self.nchannels, HISTOGRAM_BINS + 2), dtype=np.int64)
+
         # Theory is fixed by the settings: evaluate it once, on the measurement grid.
         freqs = self._spectrum.freqs_hz
         self._predicted_psd = predicted_psd(
@@ -179,6 +204,11 @@ class MeterBank:
         e[~finite] = 0.0
 
         self._spectrum.update(e * self._step)
+        if e.shape[0]:
+            # Bin 0 and the last bin count errors outside the range (there should be none).
+            idx = np.searchsorted(self.histogram_edges_lsb, e, side="right")
+            for c in range(self.nchannels):
+                self._histogram[c] += np.bincount(idx[:, c], minlength=HISTOGRAM_BINS + 2)
         self._modulation.update(v, e, finite & ~at_rail)
         self._in_peaks.update(x)
         self._out_peaks.update(q * self._step)
@@ -224,6 +254,8 @@ class MeterBank:
         effective = self._bits.effective_bits()
         pattern = self._bits.pattern()
         clipped, nonfinite = self._engine_counts if self._engine_counts is not None else (self._clipped, self._nonfinite)
+        bin_means = self._modulation.bin_means_lsb2()
+        limit = self.peak_limit_dbfs if math.isfinite(self.peak_limit_dbfs) else None
 
         channels = []
         for c in range(self.nchannels):
@@ -244,6 +276,13 @@ class MeterBank:
                     "active_bits": int(active[c]),
                     "effective_bits": int(effective[c]),
                     "bit_pattern": pattern[c],
+                    "headroom_exceeded": _exceeds(self.frames, amplitude_to_dbfs(in_sample[c]), limit),
+                    "noise_modulation_bins_lsb2": [None if not np.isfinite(v) else float(v) for v in bin_means[c]],
+                    "error_histogram": {
+                        "edges_lsb": [float(v) for v in self.histogram_edges_lsb],
+                        "counts": [int(v) for v in self._histogram[c, 1:-1]],
+                        "outside": int(self._histogram[c, 0] + self._histogram[c, -1]),
+                    },
                     "error_spectrum_dbfs": [
                         power_to_dbfs(p) if n >= 1 and self.frames else None for p, n in zip(bands[c], self._band_bins)
                     ],
@@ -272,6 +311,8 @@ class MeterBank:
                 "segments": self._spectrum.nsegments,
             },
             "noise_modulation": {"bins": self._modulation.nbins, "min_samples_per_bin": self._modulation.min_samples},
+            "shaped_error_headroom_lsb": self.headroom_lsb,
+            "peak_limit_dbfs": limit,
             "error_spectrum_bands_hz": [float(f) for f in self.band_centres_hz],
             "predicted_spectrum_dbfs": [power_to_dbfs(p) if n >= 1 else None for p, n in zip(self._predicted_bands, self._band_bins)],
             "channels": channels,
