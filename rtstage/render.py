@@ -11,8 +11,10 @@ nothing half-written.
 """
 
 import os
+import queue
 import sys
 import tempfile
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -135,7 +137,7 @@ def render_file(
         Replace an existing output file (never the input itself).
     observers : sequence of callables
         Each is called as ``observer(x_block, words_block, engine)`` after every
-        block.
+        block; the arrays are reused afterwards, so copy what you keep.
     automation : list of (int, dict) or None
         Timed parameter changes ``(frame, values)`` as read by
         :func:`rtstage.control.automation.load_automation`; blocks are split at
@@ -189,18 +191,16 @@ def render_file(
         progress = _progress(infile.frames, infile.samplerate)
         peak = 0.0
         try:
-            with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile:
-                inbuf = np.empty((blocksize, infile.channels), dtype=np.float64)
-                words = np.empty((blocksize, infile.channels), dtype=engine.dtype)
+            with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \
+                    _Reader(infile, blocksize) as reader, \
+                    _Writer(outfile, (blocksize, infile.channels), engine.dtype, info.float_out) as writer:
                 vq = np.empty((blocksize, infile.channels), dtype=np.float64)
                 task = progress.add_task("render", total=infile.frames) if progress else None
                 if progress:
                     progress.start()
-                while True:
-                    x = infile.read(out=inbuf)  # a view of inbuf, shorter at the end of the file
+                for inbuf, x in reader:
                     n = x.shape[0]
-                    if n == 0:
-                        break
+                    words = writer.acquire()
                     segments = player.segments(engine.frame, n) if player else ((0, n, None),)
                     for offset, count, values in segments:
                         if values:
@@ -212,7 +212,8 @@ def render_file(
                         meter.update(vq[:n], block)
                     for observer in observers:
                         observer(x, block, engine)
-                    outfile.write(words_to_float(block).astype(info.float_out) if info.float_out else block)
+                    reader.release(inbuf)
+                    writer.submit(words, n)
                     if progress:
                         progress.advance(task, n)
             os.replace(tmp_path, output_path)
@@ -226,6 +227,109 @@ def render_file(
     if meter is not None and hasattr(meter, "set_engine_counts"):
         meter.set_engine_counts(engine.clipped, engine.nonfinite)
     return RenderResult(engine, meter, peak)
+
+
+class _Reader:
+    """Read a sound file on a thread, a few blocks ahead, into a pool of preallocated buffers.
+
+    libsndfile runs without the GIL (cffi releases it), and so does the
+    kernel, so reading, processing and writing overlap on separate cores.
+    Iterating yields ``(buffer, block)``; hand the buffer back with
+    :meth:`release` when done with the block.
+    """
+
+    def __init__(self, infile, blocksize, depth=4):
+        self._infile = infile
+        self._free = queue.Queue()
+        self._full = queue.Queue()
+        for _ in range(depth):
+            self._free.put(np.empty((blocksize, infile.channels), dtype=np.float64))
+        self._thread = threading.Thread(target=self._run, name="rtstage-render-reader", daemon=True)
+
+    def _run(self):
+        try:
+            while True:
+                buf = self._free.get()
+                if buf is None:
+                    return
+                block = self._infile.read(out=buf)  # a view of buf, shorter at the end of the file
+                self._full.put((buf, block))
+                if block.shape[0] == 0:
+                    return
+        except BaseException as exc:  # handed to the consumer, which raises it
+            self._full.put((None, exc))
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __iter__(self):
+        while True:
+            buf, block = self._full.get()
+            if buf is None:
+                raise block
+            if block.shape[0] == 0:
+                return
+            yield buf, block
+
+    def release(self, buf):
+        """Give a buffer back for another block."""
+        self._free.put(buf)
+
+    def __exit__(self, *exc):
+        self._free.put(None)
+        self._thread.join()
+
+
+class _Writer:
+    """Write word blocks to a sound file on a thread, from a pool of preallocated buffers."""
+
+    def __init__(self, outfile, shape, dtype, float_out=None, depth=4):
+        self._outfile = outfile
+        self._float_out = float_out
+        self._free = queue.Queue()
+        self._full = queue.Queue()
+        for _ in range(depth):
+            self._free.put(np.empty(shape, dtype=dtype))
+        self._error = None
+        self._thread = threading.Thread(target=self._run, name="rtstage-render-writer", daemon=True)
+
+    def _run(self):
+        while True:
+            item = self._full.get()
+            if item is None:
+                return
+            buf, n = item
+            try:
+                if self._error is None:
+                    block = buf[:n]
+                    self._outfile.write(words_to_float(block).astype(self._float_out) if self._float_out else block)
+            except BaseException as exc:
+                self._error = exc
+            self._free.put(buf)
+
+    def _check(self):
+        if self._error is not None:
+            raise self._error
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def acquire(self):
+        """A free buffer for the next block's words."""
+        self._check()
+        return self._free.get()
+
+    def submit(self, buf, n):
+        """Queue the first ``n`` frames of ``buf`` for writing; the buffer comes back to the pool after."""
+        self._full.put((buf, n))
+
+    def __exit__(self, exc_type, *exc):
+        self._full.put(None)
+        self._thread.join()
+        if exc_type is None:
+            self._check()
 
 
 @dataclass
