@@ -44,6 +44,15 @@ GAIN_RAMP_SECONDS = 0.010
 
 SEED_MAX = 2**64 - 1
 
+MONITOR_MODES = ("requantized", "error", "input")
+"""Values of ``monitor``, in kernel code order (``rtstage.kernel.MON_*``)."""
+MAX_ERROR_GAIN_DB = 90.0
+"""Largest make-up gain for the error monitor (the error of a 16-bit word sits near -101 dBFS)."""
+ERROR_CEILING_DBFS = -20.0
+"""Peak ceiling of the error monitor's safety limiter (a hard limit, not a setting)."""
+MAX_AUTO_MUTE_HOLD_S = 60.0
+"""Longest auto-mute hold time."""
+
 
 def new_seed():
     """A random 64-bit seed (from the operating system's generator)."""
@@ -75,6 +84,22 @@ class EngineSettings:
         Expert setting: dither amplitude relative to the textbook amplitude.
     force : bool
         Accept combinations that theory marks unsafe (see :meth:`validate`).
+    monitor : str
+        What the output carries: ``requantized`` (the words), ``error`` (the
+        added error with ``error_gain_db`` of make-up gain, hard-limited at
+        :data:`ERROR_CEILING_DBFS`) or ``input`` (the gained input at the
+        container's full resolution).  Changes crossfade over 10 ms.
+    error_gain_db : float
+        Make-up gain of the error monitor, 0..90 dB.  Caution: the error of a
+        short word with make-up gain can be loud; protect your hearing and
+        follow local codes and licensed practice for listening levels.
+    mute : bool
+        Ramp the output to exactly 0 (and back) over 10 ms.
+    auto_mute : bool
+        Mute a channel whose input has been exact digital zero for
+        ``auto_mute_hold_s``; ramped, per channel, shaper history cleared.
+    auto_mute_hold_s : float
+        Hold time of auto-mute, 0..60 s (at least one frame).
     """
 
     bits: int = 16
@@ -84,6 +109,11 @@ class EngineSettings:
     gain_db: float = 0.0
     dither_scale: float = 1.0
     force: bool = False
+    monitor: str = "requantized"
+    error_gain_db: float = 0.0
+    mute: bool = False
+    auto_mute: bool = False
+    auto_mute_hold_s: float = 0.5
 
     def resolved(self):
         """A copy with a concrete seed and a :class:`Shaper` object, validated."""
@@ -124,7 +154,12 @@ class EngineSettings:
         if self.seed is not None:
             if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or not 0 <= self.seed <= SEED_MAX:
                 raise RtstageError(f"seed must be an integer from 0 to 2^64-1, got {self.seed!r}")
-        for name in ("gain_db", "dither_scale"):
+        if self.monitor not in MONITOR_MODES:
+            raise RtstageError(f"unknown monitor {self.monitor!r} (known: {', '.join(MONITOR_MODES)})")
+        for name in ("mute", "auto_mute"):
+            if not isinstance(getattr(self, name), (bool, np.bool_)):
+                raise RtstageError(f"{name} must be true or false, got {getattr(self, name)!r}")
+        for name in ("gain_db", "dither_scale", "error_gain_db", "auto_mute_hold_s"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
                 raise RtstageError(f"{name} must be a finite number, got {value!r}")
@@ -132,6 +167,11 @@ class EngineSettings:
             raise RtstageError(f"gain_db must be between {MIN_GAIN_DB:g} and +{MAX_GAIN_DB:g} dB, got {self.gain_db}")
         if not 0.0 <= self.dither_scale <= MAX_DITHER_SCALE:
             raise RtstageError(f"dither_scale must be between 0 and {MAX_DITHER_SCALE:g}, got {self.dither_scale}")
+        if not 0.0 <= self.error_gain_db <= MAX_ERROR_GAIN_DB:
+            raise RtstageError(f"error_gain_db must be between 0 and {MAX_ERROR_GAIN_DB:g} dB, got {self.error_gain_db}")
+        if not 0.0 <= self.auto_mute_hold_s <= MAX_AUTO_MUTE_HOLD_S:
+            raise RtstageError(f"auto_mute_hold_s must be between 0 and {MAX_AUTO_MUTE_HOLD_S:g} s, "
+                               f"got {self.auto_mute_hold_s}")
         shaper = self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper)
         if shaper.ntaps > MAX_TAPS:
             raise RtstageError(f"shaper '{shaper.id}' has {shaper.ntaps} taps; at most {MAX_TAPS}")
@@ -213,9 +253,7 @@ class Engine:
         st = self.state
         encode_params(settings, self.samplerate, self.out_shift, st.iparams, st.fparams)
         if not ramp:
-            st.ramp[K.RAMP_GAIN] = st.fparams[K.FP_GAIN]
-            st.ramp[K.RAMP_TARGET] = st.fparams[K.FP_GAIN]
-            st.clock[K.CLK_RAMP_LEFT] = 0
+            st.settle()
 
     @property
     def frame(self):
@@ -232,14 +270,27 @@ class Engine:
         """Replaced NaN/Inf samples per channel since the start."""
         return self.state.counts[:, K.CNT_NONFINITE].copy()
 
-    def process(self, x, out=None, quantizer_in=None):
+    @property
+    def auto_muted(self):
+        """Per channel: True while auto-mute holds the channel muted."""
+        return self.state.counts[:, K.CNT_AM_MUTED] != 0
+
+    @property
+    def auto_muted_frames(self):
+        """Frames per channel during which auto-mute held the channel muted, since the start."""
+        return self.state.counts[:, K.CNT_AM_FRAMES].copy()
+
+    def process(self, x, out=None, quantizer_in=None, requantized=None):
         """Requantize a block ``x`` of shape (frames, nchannels), float32 or float64.
 
         Returns the output words, shape (frames, nchannels), int16 for a 16-bit
-        container and left-justified int32 otherwise.  Pass ``out`` to reuse
-        an array; then nothing is allocated.  Pass ``quantizer_in`` (float64,
-        at least as many rows as ``x``) to receive ``x·gain`` as the quantizer
-        saw it, for meters.
+        container and left-justified int32 otherwise: the monitored signal
+        (the requantized words unless ``monitor`` says otherwise).  Pass
+        ``out`` to reuse an array; then nothing is allocated.  Pass
+        ``quantizer_in`` (float64, at least as many rows as ``x``) to receive
+        ``x·gain`` as the quantizer saw it, for meters, and ``requantized``
+        (the output dtype, at least as many rows) to receive the requantized
+        words whatever the monitor mode and mute.
         """
         x = np.asarray(x)
         if x.ndim != 2 or x.shape[1] != self.nchannels:
@@ -250,7 +301,12 @@ class Engine:
             out = np.empty(x.shape, dtype=self.dtype)
         if quantizer_in is None:
             quantizer_in = self._no_tap
-        K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays())
+        if requantized is None:
+            K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays())
+        else:
+            if requantized.dtype != out.dtype or requantized.ndim != 2 or requantized.shape[0] < x.shape[0]:
+                raise RtstageError("requantized must be an array of the output dtype with at least as many rows as x")
+            K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays(), requantized)
         return out
 
 
@@ -282,6 +338,12 @@ def encode_params(settings, samplerate, out_shift, iparams, fparams):
     fparams[K.FP_DITHER_SCALE] = settings.dither_scale
     fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
     fparams[K.FP_GAIN] = 10.0 ** (settings.gain_db / 20.0)
+    iparams[K.IP_MONITOR] = MONITOR_MODES.index(settings.monitor)
+    iparams[K.IP_MUTE] = 1 if settings.mute else 0
+    iparams[K.IP_AUTO_MUTE] = 1 if settings.auto_mute else 0
+    iparams[K.IP_HOLD_FRAMES] = max(1, round(settings.auto_mute_hold_s * samplerate))
+    fparams[K.FP_ERROR_GAIN] = 10.0 ** (settings.error_gain_db / 20.0)
+    fparams[K.FP_ERROR_CEIL] = 10.0 ** (ERROR_CEILING_DBFS / 20.0)
 
 
 def log(message):

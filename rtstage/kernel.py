@@ -76,8 +76,16 @@ IP_SEED = 3
 IP_OUT_SHIFT = 4
 """Left shift that places a B-bit word in its container."""
 IP_RAMP_FRAMES = 5
-"""Length of a gain ramp, in frames (at least 1)."""
-IP_LEN = 8
+"""Length of a gain ramp, in frames (at least 1); also the length of crossfades and mute ramps."""
+IP_MONITOR = 6
+"""Monitor code: MON_REQUANTIZED, MON_ERROR or MON_INPUT (what ``y`` carries)."""
+IP_MUTE = 7
+"""1: ramp the output to exactly 0 and hold it there."""
+IP_AUTO_MUTE = 8
+"""1: mute a channel whose input has been exact digital zero for IP_HOLD_FRAMES frames."""
+IP_HOLD_FRAMES = 9
+"""Auto-mute hold time in frames (at least 1)."""
+IP_LEN = 12
 
 # --- float parameters (float64) -----------------------------------------------------
 FP_GAIN = 0
@@ -86,6 +94,10 @@ FP_DITHER_SCALE = 1
 """Dither amplitude scale (1 = the textbook amplitude)."""
 FP_FEEDBACK_PEAK = 2
 """Bound on the fed-back error after a clip, in LSB."""
+FP_ERROR_GAIN = 3
+"""Linear make-up gain of the error monitor (the target of its ramp)."""
+FP_ERROR_CEIL = 4
+"""Peak ceiling of the error monitor's safety limiter, linear full scale (0.1 = -20 dBFS)."""
 FP_COEF0 = 8
 """First error-filter tap h_1; taps follow contiguously."""
 FP_LEN = FP_COEF0 + MAX_TAPS
@@ -97,7 +109,13 @@ CLK_HPOS = 1
 """Slot of the error history that the next frame writes."""
 CLK_RAMP_LEFT = 2
 """Frames left in the current gain ramp."""
-CLK_LEN = 4
+CLK_ERAMP_LEFT = 3
+"""Frames left in the current error-gain ramp."""
+CLK_MUTE_POS = 4
+"""Mute ramp position, 0 (audible) .. ramp frames (silent)."""
+CLK_MON_W0 = 5
+"""Crossfade weight of monitor mode 0, 0 .. ramp frames; modes 1 and 2 follow."""
+CLK_LEN = 8
 
 RAMP_GAIN = 0
 """Gain applied to the last frame."""
@@ -105,14 +123,33 @@ RAMP_STEP = 1
 """Gain increment per frame while ramping."""
 RAMP_TARGET = 2
 """Gain the current ramp ends at."""
-RAMP_LEN = 4
+RAMP_EGAIN = 3
+"""Error-monitor gain applied to the last frame."""
+RAMP_ESTEP = 4
+"""Error-monitor gain increment per frame while ramping."""
+RAMP_ETARGET = 5
+"""Error-monitor gain the current ramp ends at."""
+RAMP_LEN = 8
 
 # --- per-channel counters -----------------------------------------------------------
 CNT_CLIPPED = 0
 """Samples limited to the word's range."""
 CNT_NONFINITE = 1
 """NaN and ±Inf input samples replaced."""
-CNT_LEN = 2
+CNT_ZERO_RUN = 2
+"""Consecutive exact-zero input samples (saturates at the hold time)."""
+CNT_AM_MUTED = 3
+"""1 while auto-mute holds the channel muted."""
+CNT_AM_POS = 4
+"""Auto-mute ramp position, 0 (audible) .. ramp frames (silent)."""
+CNT_AM_FRAMES = 5
+"""Frames during which auto-mute held the channel muted, since the start."""
+CNT_LEN = 8
+
+MON_REQUANTIZED = 0
+MON_ERROR = 1
+MON_INPUT = 2
+N_MONITOR = 3
 
 HIST_LEN = 64
 """Error-history length per channel (a power of two, at least MAX_TAPS)."""
@@ -180,16 +217,36 @@ class KernelState:
         return (self.iparams, self.fparams, self.hist, self.counts, self.clock, self.ramp, self.rng_words, self.rng_tag)
 
     def reset(self, start_frame=0):
-        """Clear history, counters and caches; the next frame gets sample index ``start_frame``."""
+        """Clear history, counters and caches; the next frame gets sample index ``start_frame``.
+
+        Gain, error gain, monitor mode and mute start at rest at the values
+        in ``iparams``/``fparams`` (no ramp, no crossfade).
+        """
         self.hist[:] = 0.0
         self.counts[:] = 0
         self.clock[:] = 0
         self.clock[CLK_FRAME] = start_frame
         self.rng_tag[:] = -1
-        gain = self.fparams[FP_GAIN]
         self.ramp[:] = 0.0
+        self.settle()
+
+    def settle(self):
+        """Bring gain, error gain, monitor crossfade and mute to their targets at once (no ramp)."""
+        gain = self.fparams[FP_GAIN]
         self.ramp[RAMP_GAIN] = gain
         self.ramp[RAMP_TARGET] = gain
+        self.ramp[RAMP_STEP] = 0.0
+        egain = self.fparams[FP_ERROR_GAIN]
+        self.ramp[RAMP_EGAIN] = egain
+        self.ramp[RAMP_ETARGET] = egain
+        self.ramp[RAMP_ESTEP] = 0.0
+        self.clock[CLK_RAMP_LEFT] = 0
+        self.clock[CLK_ERAMP_LEFT] = 0
+        frames = max(int(self.iparams[IP_RAMP_FRAMES]), 1)
+        mode = int(self.iparams[IP_MONITOR])
+        for m in range(N_MONITOR):
+            self.clock[CLK_MON_W0 + m] = frames if m == mode else 0
+        self.clock[CLK_MUTE_POS] = frames if self.iparams[IP_MUTE] != 0 else 0
 
 
 @njit(nogil=True, cache=True, inline="always")
@@ -226,26 +283,29 @@ def _dither(kind, c, index, rng_words):
     return 0.5 * math.sqrt(-2.0 * math.log(a + 0.5)) * math.cos(_TWO_PI * (b + 0.5))
 
 
-@njit(nogil=True, cache=True, error_model="numpy")
-def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag):
-    """Requantize ``nframes`` frames of ``x`` into ``y``.
+@njit(nogil=True, cache=True, inline="always")
+def _toward(pos, target):
+    """One frame of an integer ramp position toward ``target``."""
+    if pos < target:
+        return pos + 1
+    if pos > target:
+        return pos - 1
+    return pos
 
-    Parameters
-    ----------
-    x : ndarray, shape (>= nframes, nchannels), float32 or float64
-        Input in full-scale units.
-    y : ndarray, shape (>= nframes, nchannels), integer
-        Output words, ``q << out_shift``.
-    vq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), float64
-        Meter tap: receives the input as it enters the quantizer, ``x·gain``
-        in full-scale units (non-finite samples as replaced), so that a meter
-        sees exactly the values the words were made from, gain ramps
-        included.  An array with no rows turns the tap off.
-    nframes : int
-        Frames to process; 0 is allowed.
-    iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag : ndarray
-        Parameters and state, see :class:`KernelState`; state is updated in place.
-    """
+
+@njit(nogil=True, cache=True, inline="always")
+def _round_clamp(value, lo, hi):
+    """``floor(value + 1/2)`` limited to [lo, hi], as an int64."""
+    r = np.floor(value + 0.5)
+    if r > hi:
+        r = hi
+    elif r < lo:
+        r = lo
+    return np.int64(r)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag, yq):
     nch = hist.shape[0]
     bits = iparams[IP_BITS]
     kind = iparams[IP_DITHER]
@@ -257,21 +317,47 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
     q_lo = -scale
     dscale = fparams[FP_DITHER_SCALE]
     fb_peak = fparams[FP_FEEDBACK_PEAK]
+    ramp_frames = max(iparams[IP_RAMP_FRAMES], 1)
+    inv_frames = 1.0 / ramp_frames
+    # Container: bits + shift bits wide, in units of its own LSB.
+    cscale = math.ldexp(1.0, shift)
+    c_hi = math.ldexp(1.0, bits - 1 + shift) - 1.0
+    c_lo = -math.ldexp(1.0, bits - 1 + shift)
+    e_ceil = fparams[FP_ERROR_CEIL] * math.ldexp(1.0, bits - 1 + shift)
+    mode = iparams[IP_MONITOR]
+    if mode < 0 or mode >= N_MONITOR:
+        mode = MON_REQUANTIZED
+    mute_target = ramp_frames if iparams[IP_MUTE] != 0 else 0
+    auto_mute = iparams[IP_AUTO_MUTE] != 0
+    hold = max(iparams[IP_HOLD_FRAMES], 1)
 
     # A new gain target starts a linear ramp at this block boundary.
     target = fparams[FP_GAIN]
     if target != ramp[RAMP_TARGET]:
-        ramp_frames = max(iparams[IP_RAMP_FRAMES], 1)
         ramp[RAMP_TARGET] = target
         ramp[RAMP_STEP] = (target - ramp[RAMP_GAIN]) / ramp_frames
         clock[CLK_RAMP_LEFT] = ramp_frames
     gain = ramp[RAMP_GAIN]
     step = ramp[RAMP_STEP]
     ramp_left = clock[CLK_RAMP_LEFT]
+    # The same for the error monitor's make-up gain.
+    etarget = fparams[FP_ERROR_GAIN]
+    if etarget != ramp[RAMP_ETARGET]:
+        ramp[RAMP_ETARGET] = etarget
+        ramp[RAMP_ESTEP] = (etarget - ramp[RAMP_EGAIN]) / ramp_frames
+        clock[CLK_ERAMP_LEFT] = ramp_frames
+    egain = ramp[RAMP_EGAIN]
+    estep = ramp[RAMP_ESTEP]
+    eramp_left = clock[CLK_ERAMP_LEFT]
+    mute_pos = min(clock[CLK_MUTE_POS], ramp_frames)
+    w0 = min(clock[CLK_MON_W0], ramp_frames)
+    w1 = min(clock[CLK_MON_W0 + 1], ramp_frames)
+    w2 = min(clock[CLK_MON_W0 + 2], ramp_frames)
 
     frame0 = clock[CLK_FRAME]
     hpos = clock[CLK_HPOS]
     tap = vq.shape[0] >= nframes
+    wtap = yq.shape[0] >= nframes
     # Unless this block continues the last one with the same seed, prime the
     # ring with the blocks of the first frames (one earlier for tpdf-hp); the
     # frame loop then computes each block RNG_LOOKAHEAD_BLOCKS ahead of its use.
@@ -287,12 +373,24 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
         if ramp_left > 0:
             ramp_left -= 1
             gain = target if ramp_left == 0 else gain + step
+        if eramp_left > 0:
+            eramp_left -= 1
+            egain = etarget if eramp_left == 0 else egain + estep
+        w0 = _toward(w0, ramp_frames if mode == MON_REQUANTIZED else 0)
+        w1 = _toward(w1, ramp_frames if mode == MON_ERROR else 0)
+        w2 = _toward(w2, ramp_frames if mode == MON_INPUT else 0)
+        mute_pos = _toward(mute_pos, mute_target)
+        # At rest in one mode, unmuted: the words come straight from q, the error or the input.
+        at_rest = mute_pos == 0 and ((mode == MON_REQUANTIZED and w0 == ramp_frames and w1 == 0 and w2 == 0)
+                                     or (mode == MON_ERROR and w1 == ramp_frames and w0 == 0 and w2 == 0)
+                                     or (mode == MON_INPUT and w2 == ramp_frames and w0 == 0 and w1 == 0))
         index = frame0 + n
         if dithered and (index & 3) == 0:
             for c in range(nch):
                 _fill_block(seed, c, (index >> FRAMES_PER_BLOCK_SHIFT) + RNG_LOOKAHEAD_BLOCKS, rng_words)
         for c in range(nch):
             xv = np.float64(x[n, c])
+            exact_zero = xv == 0.0
             if not math.isfinite(xv):
                 counts[c, CNT_NONFINITE] += 1
                 if math.isnan(xv):
@@ -303,9 +401,33 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
                     xv = -1.0
                 for k in range(HIST_LEN):
                     hist[c, k] = 0.0
+            # Auto-mute: exact digital zero held for `hold` frames mutes the channel.
+            muted = False
+            if auto_mute:
+                if exact_zero:
+                    if counts[c, CNT_ZERO_RUN] < hold:
+                        counts[c, CNT_ZERO_RUN] += 1
+                else:
+                    counts[c, CNT_ZERO_RUN] = 0
+                muted = counts[c, CNT_ZERO_RUN] >= hold
+            else:
+                counts[c, CNT_ZERO_RUN] = 0
+            if muted:
+                if counts[c, CNT_AM_MUTED] == 0:
+                    for k in range(HIST_LEN):
+                        hist[c, k] = 0.0
+                counts[c, CNT_AM_MUTED] = 1
+                counts[c, CNT_AM_FRAMES] += 1
+            else:
+                counts[c, CNT_AM_MUTED] = 0
+            am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
+            counts[c, CNT_AM_POS] = am_pos
+
+            v = xv * gain
             if tap:
-                vq[n, c] = xv * gain
-            u = xv * gain * scale
+                vq[n, c] = v
+            v *= scale
+            u = v
             if ntaps > 0:
                 fb = 0.0
                 for k in range(1, ntaps + 1):
@@ -324,10 +446,32 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
                     e = fb_peak
                 elif e < -fb_peak:
                     e = -fb_peak
-            if abs(e) < _DENORMAL_GUARD:
+            if abs(e) < _DENORMAL_GUARD or muted:
                 e = 0.0
             hist[c, hpos] = e
-            y[n, c] = np.int64(q) << shift
+            word = np.int64(q) << shift
+            if wtap:
+                yq[n, c] = word
+            if at_rest and am_pos == 0:
+                if mode == MON_REQUANTIZED:
+                    y[n, c] = word
+                elif mode == MON_ERROR:
+                    ev = (q - v) * cscale * egain
+                    ev = min(max(ev, -e_ceil), e_ceil)
+                    y[n, c] = _round_clamp(ev, c_lo, c_hi)
+                else:
+                    y[n, c] = _round_clamp(v * cscale, c_lo, c_hi)
+            else:
+                acc = 0.0
+                if w0 > 0:
+                    acc += w0 * (q * cscale)
+                if w1 > 0:
+                    ev = (q - v) * cscale * egain
+                    acc += w1 * min(max(ev, -e_ceil), e_ceil)
+                if w2 > 0:
+                    acc += w2 * (v * cscale)
+                acc *= inv_frames * ((ramp_frames - mute_pos) * inv_frames) * ((ramp_frames - am_pos) * inv_frames)
+                y[n, c] = _round_clamp(acc, c_lo, c_hi)
         hpos = (hpos + 1) & HIST_MASK
 
     if nframes > 0:
@@ -337,4 +481,42 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
     clock[CLK_FRAME] = frame0 + nframes
     clock[CLK_HPOS] = hpos
     clock[CLK_RAMP_LEFT] = ramp_left
+    clock[CLK_ERAMP_LEFT] = eramp_left
+    clock[CLK_MUTE_POS] = mute_pos
+    clock[CLK_MON_W0] = w0
+    clock[CLK_MON_W0 + 1] = w1
+    clock[CLK_MON_W0 + 2] = w2
     ramp[RAMP_GAIN] = gain
+    ramp[RAMP_EGAIN] = egain
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag, yq=None):
+    """Requantize ``nframes`` frames of ``x`` into ``y``.
+
+    Parameters
+    ----------
+    x : ndarray, shape (>= nframes, nchannels), float32 or float64
+        Input in full-scale units.
+    y : ndarray, shape (>= nframes, nchannels), integer
+        Output words in container units: ``q << out_shift`` in the
+        requantized monitor mode, otherwise the monitored signal (see the
+        module notes on monitor modes, mute and auto-mute).
+    vq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), float64
+        Meter tap: receives the input as it enters the quantizer, ``x·gain``
+        in full-scale units (non-finite samples as replaced), so that a meter
+        sees exactly the values the words were made from, gain ramps
+        included.  An array with no rows turns the tap off.
+    nframes : int
+        Frames to process; 0 is allowed.
+    iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag : ndarray
+        Parameters and state, see :class:`KernelState`; state is updated in place.
+    yq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), integer, optional
+        Meter words: the requantized words ``q << out_shift`` whatever the
+        monitor mode, mute or auto-mute, so that meters measure the real
+        requantized output.  Omitted or no rows: off.
+    """
+    if yq is None:
+        _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag, y[:0])
+    else:
+        _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag, yq)

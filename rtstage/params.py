@@ -53,7 +53,7 @@ from .dither import DITHER_KINDS
 from .errors import RtstageError
 from .shapers import PRESET_SHAPER_DIR, all_shapers
 
-MONITOR_MODES = ("requantized", "error", "input")
+MONITOR_MODES = _engine.MONITOR_MODES
 """Values of ``monitor``: what the output carries (see the module docstring)."""
 
 # Ranges that EngineSettings.validate checks inline; read from the engine when it
@@ -63,11 +63,11 @@ MIN_GAIN_DB = _engine.MIN_GAIN_DB
 MAX_GAIN_DB = _engine.MAX_GAIN_DB
 MAX_DITHER_SCALE = _engine.MAX_DITHER_SCALE
 
-MAX_ERROR_GAIN_DB = 90.0
-"""Largest make-up gain for the error monitor (the error of a 16-bit word sits near -101 dBFS)."""
-MAX_AUTO_MUTE_HOLD_S = 60.0
+MAX_ERROR_GAIN_DB = _engine.MAX_ERROR_GAIN_DB
+MAX_AUTO_MUTE_HOLD_S = _engine.MAX_AUTO_MUTE_HOLD_S
 
-ENGINE_FIELDS = ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale")
+ENGINE_FIELDS = ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale", "monitor", "error_gain_db", "mute",
+                 "auto_mute", "auto_mute_hold_s")
 """Parameters that are fields of :class:`rtstage.engine.EngineSettings`."""
 
 
@@ -166,8 +166,9 @@ _TABLE = (
     ParamSpec("error_gain_db", "float", 0.0, "make-up gain of the error monitor (caution: can be loud)", "dB",
               0.0, MAX_ERROR_GAIN_DB, when="ramped"),
     ParamSpec("mute", "bool", False, "silence the output", when="ramped"),
-    ParamSpec("auto_mute", "bool", False, "mute automatically on a fault (see auto_mute_hold_s)"),
-    ParamSpec("auto_mute_hold_s", "float", 0.5, "time an automatic mute is held after the fault clears", "s",
+    ParamSpec("auto_mute", "bool", False, "mute a channel whose input is exact digital zero for auto_mute_hold_s",
+              when="ramped"),
+    ParamSpec("auto_mute_hold_s", "float", 0.5, "time of exact digital zero input before auto-mute", "s",
               0.0, MAX_AUTO_MUTE_HOLD_S),
     ParamSpec("seed", "seed", None, "dither seed (null: random)", when="start"),
 )
@@ -276,6 +277,8 @@ def validate_values(values, current=None, force=False):
     settings = _engine.EngineSettings(
         bits=merged["bits"], dither=merged["dither"], shaper=shaper, seed=merged["seed"],
         gain_db=merged["gain_db"], dither_scale=merged["dither_scale"], force=bool(force),
+        monitor=merged["monitor"], error_gain_db=merged["error_gain_db"], mute=merged["mute"],
+        auto_mute=merged["auto_mute"], auto_mute_hold_s=merged["auto_mute_hold_s"],
     )
     settings.validate()
     return {name: checked[name] for name in PARAMS if name in checked}
