@@ -54,6 +54,42 @@ lost, as in any clipper.  A non-finite input sample is replaced (NaN by 0,
 ±Inf by ±full scale), counted, and the channel's error history is cleared.
 Fed-back errors smaller than 1e-30 LSB are stored as zero, so no denormal
 value ever enters the state.
+
+Monitor modes, mute, auto-mute
+------------------------------
+The requantized word q is computed for every sample in every mode, so the
+shaper and the dither sequence never depend on the monitor mode (auto-mute
+alone touches the shaper, below).  In container units (the container is
+``bits + out_shift`` bits wide, C its full scale ``2^(bits-1+out_shift)``),
+with ``v = x·gain·2^(B-1)`` the input in LSB before feedback:
+
+* requantized: ``q << out_shift``, exactly (no float path at rest);
+* error: ``(q - v)·2^out_shift·error_gain``, limited to ±``error_ceil``·C
+  (a hard safety limit, -20 dBFS peak from the engine), then rounded;
+* input: ``v·2^out_shift``, rounded at the container's full resolution (an
+  A/B against the words is exact only when the container is finer than the
+  audition word, e.g. bits=8 in a 16-bit container).
+
+Rounding is ``floor(value + 1/2)``, limited to the container's range.  Each
+mode has an integer crossfade weight 0..R (R = IP_RAMP_FRAMES, 10 ms) that
+moves one step per frame toward R for the selected mode and 0 for the others;
+while any weight is between, the output is ``Σ w_m·out_m / R`` times the mute
+and auto-mute gains, rounded.  Mute is an integer position 0..R moving one
+step per frame (gain ``1 - pos/R``), so it reaches exactly 0 and comes back.
+The error gain ramps like the main gain.
+
+Auto-mute, per channel (when IP_AUTO_MUTE is set): the kernel counts
+consecutive input samples exactly equal to 0.0 (NaN and -0.0 aside: -0.0 ==
+0.0 counts, NaN does not); from the sample that completes IP_HOLD_FRAMES of
+them the channel is muted: its history is cleared and stays clear (the
+fed-back error is stored as 0), its gain ramps to 0 over R frames (integer
+position in ``counts[c, CNT_AM_POS]``), ``CNT_AM_MUTED`` is 1 and
+``CNT_AM_FRAMES`` counts the frames.  The first non-zero sample, however
+small, unmutes it and the gain ramps back.  All of it is integer state in the
+arrays, so any block split gives the same words.
+
+Meter words: ``yq`` receives ``q << out_shift`` whatever the mode, mute or
+auto-mute, for meters that measure the real requantized output.
 """
 
 import math

@@ -34,10 +34,13 @@ effect, which :func:`~rtstage.control.automation.process_with_automation`
 re-renders bit for bit.  The cost is that two changes less than one block
 apart are applied at the same boundary or at consecutive ones, never lost.
 
-Parameters the kernel does not implement yet (``monitor``, ``mute``,
-``auto_mute``, ``auto_mute_hold_s``, ``error_gain_db``) are validated, kept,
-published (as an unchanged kernel block, so they still get a frame) and
-logged, but do not change the words.
+Every parameter reaches the kernel, ``monitor``, ``error_gain_db``,
+``mute``, ``auto_mute`` and ``auto_mute_hold_s`` included.  The first change
+that raises ``error_gain_db`` above 0 dB logs the hearing-safety caution
+(:data:`rtstage.control.target.ERROR_GAIN_CAUTION`) on stderr, and
+:meth:`caution` returns it for that ticket.  Status and meters carry
+``auto_muted`` (per channel, read from the kernel's counters) and
+``auto_muted_frames``.
 """
 
 import threading
@@ -153,6 +156,7 @@ class LiveTarget(ControlTarget):
             self._ticket += 1
             self._pending_ticket = self._ticket
             ticket = self._ticket
+        self.note_caution(values, ticket)
         self._try_publish()
         self._wake.set()
         return ticket
@@ -182,13 +186,28 @@ class LiveTarget(ControlTarget):
             "seed": self._start_seed,
             "settings": self.get(),
             "changes_applied": len(self.applied),
+            "auto_muted": self._auto_muted(),
+            "auto_muted_frames": self._auto_muted_frames(),
             "live": live,
         }
+
+    def _auto_muted(self):
+        from .. import kernel as K
+
+        return [bool(v) for v in self.engine.block.kernel.counts[:, K.CNT_AM_MUTED]]
+
+    def _auto_muted_frames(self):
+        from .. import kernel as K
+
+        return [int(v) for v in self.engine.block.kernel.counts[:, K.CNT_AM_FRAMES]]
 
     def meters(self):
         meters = getattr(self.engine, "meters", None)
         if callable(meters):
-            return meters()
+            snapshot = meters()
+            if isinstance(snapshot, dict):
+                snapshot = dict(snapshot, auto_muted=self._auto_muted())
+            return snapshot
         live = self.engine.status()
         nch = live.get("channels") or 0
         return {
@@ -197,6 +216,7 @@ class LiveTarget(ControlTarget):
             "rms_dbfs": _dbfs_none(nch),
             "clipped": live.get("clipped", []),
             "nonfinite": live.get("nonfinite", []),
+            "auto_muted": self._auto_muted(),
             "levels_available": False,
         }
 

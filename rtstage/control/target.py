@@ -39,6 +39,13 @@ The contract a target must keep
     ``peak_dbfs`` and ``rms_dbfs`` (lists, one per channel, None for digital
     silence), ``clipped`` and ``nonfinite`` (lists of counts since start).
 
+Hearing-safety caution
+----------------------
+The first change that raises ``error_gain_db`` above 0 dB on a target logs
+:data:`ERROR_GAIN_CAUTION` on stderr, and :meth:`ControlTarget.caution`
+returns it for that change's ticket, so that a control surface can show it
+(the socket reply's ``caution`` field).
+
 Targets may also offer ``applied`` (a list of ``(frame, values,
 monotonic_s)`` of applied changes) for benchmarks and tests.
 """
@@ -50,12 +57,42 @@ import time
 import numpy as np
 
 from .. import params
-from ..engine import container_bits
+from ..engine import container_bits, log
 from ..errors import RtstageError
+
+
+ERROR_GAIN_CAUTION = (
+    "caution: error monitor make-up gain above 0 dB: the added error of a short word, raised by this gain, can be "
+    "loud (limited at -20 dBFS peak); turn the listening level down first, protect your hearing, and follow local "
+    "codes and licensed practice for listening levels"
+)
+"""Logged (and returned by :meth:`ControlTarget.caution`) the first time ``error_gain_db`` goes above 0 dB."""
 
 
 class ControlTarget:
     """The interface the control layer drives (see the module docstring)."""
+
+    _cautioned = False
+    _cautions = None
+
+    def note_caution(self, values, ticket):
+        """Log the hearing-safety caution the first time ``values`` raise ``error_gain_db`` above 0 dB.
+
+        Returns the caution text for that change, else None.
+        """
+        gain_db = values.get("error_gain_db")
+        if gain_db is None or gain_db <= 0.0 or self._cautioned:
+            return None
+        self._cautioned = True
+        if self._cautions is None:
+            self._cautions = {}
+        self._cautions[ticket] = ERROR_GAIN_CAUTION
+        log(ERROR_GAIN_CAUTION)
+        return ERROR_GAIN_CAUTION
+
+    def caution(self, ticket):
+        """The hearing-safety caution raised by the change of ``ticket``, or None."""
+        return (self._cautions or {}).get(ticket)
 
     def get(self):
         """Current value of every parameter, by name."""
@@ -108,10 +145,10 @@ class EngineTarget(ControlTarget):
     Changes are queued by :meth:`set` and applied by :meth:`process` before
     the block it is given, so they take effect at a block boundary, all
     together.  While no driver runs (``running`` false) :meth:`set` applies
-    them at once, at the engine's current frame.  Parameters the kernel does
-    not implement yet (``monitor``, ``error_gain_db``, ``mute``,
-    ``auto_mute``, ``auto_mute_hold_s``) are kept, logged and reported, but do
-    not change the words.
+    them at once, at the engine's current frame.  Every parameter reaches the
+    kernel (``monitor``, ``mute`` and ``auto_mute`` included); the meters
+    measure the requantized words whatever the monitor mode, and report
+    ``auto_muted`` per channel.
     """
 
     def __init__(self, engine, blocksize=256, automation_log=None, apply_timeout_s=0.5):
@@ -154,6 +191,7 @@ class EngineTarget(ControlTarget):
             self._seq += 1
             seq = self._seq
             running = self.running
+        self.note_caution(values, seq)
         if not running:
             with self._engine_lock:
                 self._apply_pending()
@@ -217,8 +255,10 @@ class EngineTarget(ControlTarget):
         """Apply pending changes, then requantize block ``x``; returns the words."""
         with self._engine_lock:
             self._apply_pending()
-            y = self.engine.process(x, out=out)
-        meters = self._meter_frame(y)
+            x = np.asarray(x)
+            requantized = np.empty(x.shape, dtype=self.engine.dtype)
+            y = self.engine.process(x, out=out, requantized=requantized)
+        meters = self._meter_frame(requantized)
         with self._lock:
             self._meters = meters
         return y
@@ -239,6 +279,7 @@ class EngineTarget(ControlTarget):
             "rms_dbfs": rms,
             "clipped": [int(v) for v in self.engine.clipped],
             "nonfinite": [int(v) for v in self.engine.nonfinite],
+            "auto_muted": [bool(v) for v in self.engine.auto_muted],
         }
 
 
