@@ -5,7 +5,8 @@ take pending parameters at the block boundary (seqlock), fetch input (the
 device's float32 buffer, the preloaded file, or the generator), run
 :func:`rtstage.kernel.process_block`, write the words to PortAudio's output
 buffer, copy them into the tap ring, and copy the meter tap (the
-quantizer's input, ``x·gain``) with the words into the meter ring.  :func:`build_callback` wraps it in a
+quantizer's input, ``x·gain``) with the requantized words (not the monitored
+output) into the meter ring.  :func:`build_callback` wraps it in a
 numba ``cfunc`` with PortAudio's ``PaStreamCallback`` signature, so PortAudio
 calls machine code directly: no Python, no GIL, no allocation, no lock and no
 I/O inside the callback.
@@ -55,9 +56,16 @@ def _view(table, slot, shape, dtype):
 
 @njit(nogil=True)
 def _run(x, y, n, table, ctl, nch):
-    """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring and the meter ring."""
+    """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring and the meter ring.
+
+    The tap ring gets ``y``, exactly what the device receives; the meter ring
+    gets the requantized words (the kernel's ``yq``), whatever the monitor
+    mode, mute or auto-mute.
+    """
     meter_on = ctl[S.C_METER_ON] != 0
-    vq = _view(table, S.T_VQ, (ctl[S.C_MAX_FRAMES] if meter_on else 0, nch), np.float64)  # no rows: tap off
+    rows = ctl[S.C_MAX_FRAMES] if meter_on else 0  # no rows: taps off
+    vq = _view(table, S.T_VQ, (rows, nch), np.float64)
+    yq = _view(table, S.T_YQ, (rows, nch), y.dtype)
     K.process_block(
         x, y, vq, n,
         _view(table, S.T_KIP, (K.IP_LEN,), np.int64),
@@ -68,13 +76,14 @@ def _run(x, y, n, table, ctl, nch):
         _view(table, S.T_RAMP, (K.RAMP_LEN,), np.float64),
         _view(table, S.T_RNGW, (nch * K.RNG_RING_BLOCKS, 4), np.uint64),
         _view(table, S.T_RNGT, (K.RNG_TAG_LEN,), np.int64),
+        yq,
     )
     ring = _view(table, S.T_RING, (ctl[S.C_RING_FRAMES], nch), y.dtype)
     S.ring_write(ctl, ring, y, n)
     if meter_on:
         mrows = ctl[S.C_MRING_FRAMES]
         S.meter_ring_write(ctl, _view(table, S.T_MX, (mrows, nch), np.float64), _view(table, S.T_MW, (mrows, nch), y.dtype),
-                           vq, y, n)
+                           vq, yq, n)
 
 
 @njit(nogil=True)

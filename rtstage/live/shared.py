@@ -8,8 +8,11 @@ and reached through one table of addresses (the callback's userdata):
 * the control and counter array ``ctl`` (int64, indices ``C_*``);
 * the source: a preloaded float64 file, or generator parameters and a scratch block;
 * the tap ring: a single-producer single-consumer ring of output words;
-* the meter tap ``vq`` (the quantizer's input of the current block) and the
-  meter ring: an SPSC ring of (quantizer input, output word) pairs.
+* the meter tap ``vq`` (the quantizer's input of the current block), the
+  requantized words of the current block (the kernel's second output), and
+  the meter ring: an SPSC ring of (quantizer input, requantized word) pairs.
+  The device and the tap ring get the monitored words (``monitor``, mute,
+  auto-mute); the meters always get the requantized words.
 
 Seqlock (parameters, Python → callback)
 ---------------------------------------
@@ -34,7 +37,8 @@ Meter ring (quantizer input and words, callback → meter thread)
 The same discipline with its own counters (``C_MRING_HEAD``,
 ``C_MRING_TAIL``, ``C_MRING_DROPPED``) and two parallel arrays of
 ``meter_frames`` rows: ``x·gain`` exactly as the quantizer saw it (float64)
-and the output words.  :func:`meter_ring_write` appends a block whole or
+and the requantized words (equal to the output words in the requantized
+monitor mode, unmuted).  :func:`meter_ring_write` appends a block whole or
 counts it dropped, so the callback never waits for the meter thread;
 :func:`meter_ring_read` is the consumer.  While no frame is dropped, meter
 ring frame k is the engine's sample index k.
@@ -70,8 +74,11 @@ T_VQ = 18
 T_MX = 19
 """Meter ring, quantizer input, float64 (meter_frames, nchannels)."""
 T_MW = 20
-"""Meter ring, output words, output dtype (meter_frames, nchannels)."""
-T_LEN = 21
+"""Meter ring, requantized words, output dtype (meter_frames, nchannels)."""
+T_YQ = 21
+"""Requantized words of the current block, output dtype (max_frames, nchannels): what the meters get, whatever
+the monitor mode, mute or auto-mute (the device and the tap get the monitored words)."""
+T_LEN = 22
 
 # --- ctl: layout and configuration (written before start) -------------------------
 C_NCH = 0
@@ -164,6 +171,7 @@ def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames, meter_fram
     spec[T_VQ] = ((int(max_frames), nch), np.float64)
     spec[T_MX] = ((max(int(meter_frames), 1), nch), np.float64)
     spec[T_MW] = ((max(int(meter_frames), 1), nch), out_dtype)
+    spec[T_YQ] = ((int(max_frames), nch), out_dtype)
     offsets = []
     offset = 0
     for shape, dtype in spec:
@@ -222,6 +230,7 @@ class SharedBlock:
         self.source, self.xbuf, self.gen_words, self.gen_fp = arrays[T_SRC], arrays[T_XBUF], arrays[T_GENW], arrays[T_GENF]
         self.ring = arrays[T_RING]
         self.vq, self.meter_x, self.meter_words = arrays[T_VQ], arrays[T_MX], arrays[T_MW]
+        self.requantized = arrays[T_YQ]
         if init:
             self.kernel.rng_tag[:] = -1
             self.ctl[C_NCH] = self.nchannels
