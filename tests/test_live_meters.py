@@ -28,7 +28,7 @@ SR = 48000
 
 LIVE_ONLY_KEYS = {"frame", "metered_from_frame", "peak_dbfs", "rms_dbfs", "clipped", "nonfinite", "meter_dropped_frames",
                   "meter_backlog_frames", "meter_thread_busy_s", "state", "xruns", "xruns_after_settle", "cpu_load",
-                  "cpu_load_max", "restarts"}
+                  "cpu_load_max", "restarts", "auto_muted"}
 """Snapshot fields beyond MeterBank.report(): position, levels since the last snapshot, engine health."""
 
 

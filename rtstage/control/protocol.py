@@ -369,7 +369,11 @@ class Dispatcher:
         if "values" not in req:
             raise RequestError("set needs 'values', an object of parameter names to values")
         checked, ticket = self.controller.submit(req["values"], source="socket")
-        return ok_reply(rid, values=checked, at_frame=ticket, _wait=True)
+        reply = ok_reply(rid, values=checked, at_frame=ticket, _wait=True)
+        caution = getattr(self.controller.target, "caution", lambda t: None)(ticket)
+        if caution:
+            reply["caution"] = caution
+        return reply
 
     def finish_set(self, reply):
         """Turn the ticket of a queued ``set`` reply into the sample index it took effect at (blocks)."""

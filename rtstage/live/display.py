@@ -131,8 +131,10 @@ def render_text(snap, width=BAR_WIDTH):
         ch = channels[c] if c < len(channels) else {}
         rms = (snap.get("rms_dbfs") or [None] * nch)[c]
         bar = level_bar(rms, peaks[c], bool(clipped[c]) if c < len(clipped) else False, width)
+        muted = c < len(snap.get("auto_muted") or []) and snap["auto_muted"][c]
         lines.append(f"{_channel_name(c, nch):>3}  {bar} {_fmt(rms)} {_fmt(peaks[c])} "
-                     f"{_fmt(ch.get('input_sample_peak_dbfs'))} {_fmt(ch.get('true_peak_dbtp'))}")
+                     f"{_fmt(ch.get('input_sample_peak_dbfs'))} {_fmt(ch.get('true_peak_dbtp'))}"
+                     + ("  MUTED (digital silence)" if muted else ""))
         if ch:
             lines.append(
                 f"     noise dBFS unw {_fmt(_noise(ch, 'unweighted'))} A {_fmt(_noise(ch, 'a_weighted'))} "
@@ -162,6 +164,8 @@ def status_line(snap):
         if ch:
             text += f" nA {_fmt(_noise(ch, 'a_weighted'), 0)} mod {_fmt(ch.get('noise_modulation_db'), 0)}"
         text += f" clip {clipped[c] if c < len(clipped) else 0}"
+        if c < len(snap.get("auto_muted") or []) and snap["auto_muted"][c]:
+            text += " MUTED(silence)"
         parts.append(text)
     if "cpu_load" in snap:
         parts.append(f"cpu {100.0 * (snap.get('cpu_load') or 0.0):.1f}%")

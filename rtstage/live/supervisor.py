@@ -547,6 +547,8 @@ class LiveEngine:
             "tap_dropped_frames": b.counter(S.C_RING_DROPPED) if b else 0,
             "clipped": b.kernel.counts[:, K.CNT_CLIPPED].tolist() if b else [],
             "nonfinite": b.kernel.counts[:, K.CNT_NONFINITE].tolist() if b else [],
+        "auto_muted": (b.kernel.counts[:, K.CNT_AM_MUTED] != 0).tolist() if b else [],
+        "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
             "settings_applied": list(self.applied_log),
         }
         return result
@@ -589,7 +591,8 @@ class LiveEngine:
             ``peak_dbfs``, ``rms_dbfs``, ``clipped``, ``nonfinite`` (see
             :mod:`rtstage.live.meterthread`), and engine health: ``xruns``
             (callbacks with a status flag set), ``xruns_after_settle``,
-            ``cpu_load``, ``cpu_load_max``, ``restarts``.  Before the first
+            ``cpu_load``, ``cpu_load_max``, ``restarts``, and ``auto_muted``
+            (per channel).  Before the first
             snapshot, or without meters, only ``frame`` (0), ``peak_dbfs``,
             ``rms_dbfs`` (None), ``clipped``, ``nonfinite`` and the health.
         """
@@ -607,5 +610,6 @@ class LiveEngine:
             "cpu_load": status["cpu_load"],
             "cpu_load_max": status["cpu_load_max"],
             "restarts": status["restarts"],
+            "auto_muted": status["auto_muted"],
         })
         return out
