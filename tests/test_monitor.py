@@ -233,3 +233,64 @@ def test_block_split_invariance(schedule):
     assert_array_equal(r1, r2)
     assert_array_equal(e1.state.counts, e2.state.counts)
     assert_array_equal(e1.state.hist, e2.state.hist)
+
+
+def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server, tmp_path):
+    # The live path: switch the monitor to the added error (with make-up gain), to the input, mute and
+    # back over the real socket while `rtstage run` taps what the device receives; the tap must equal the
+    # offline re-render from the engine's own --automation-log (kernel: one computation, two drivers),
+    # and the first raise of error_gain_db above 0 dB carries the hearing-safety caution.
+    import json
+    import socket
+    import time
+
+    import soundfile as sf
+    from numpy.testing import assert_array_equal
+
+    from test_live_control import RunProcess, _free_port, _rerender
+
+    source = "tone:freq_hz=997,level_dbfs=-60"  # a quiet tone: the error monitor is audible next to it
+    tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "changes.jsonl", "status.json", "run.err"))
+    port = _free_port()
+    run = RunProcess(jack_server, [
+        "--source", source, "--bits", "12", "--dither", "tpdf", "--shaper", "flat", "--seed", "99",
+        "--blocksize", "128", "--tap", tap, "--status-file", st, "--automation-log", log_path,
+        "--control-port", str(port), "--quiet"], err)
+    try:
+        run.wait_for_log("rtstage: running:")
+        with socket.create_connection(("127.0.0.1", port), timeout=10) as sock, sock.makefile("rwb") as f:
+            f.readline()
+
+            def request(obj):
+                f.write((json.dumps(obj) + "\n").encode())
+                f.flush()
+                while True:
+                    reply = json.loads(f.readline())
+                    if "event" not in reply:
+                        return reply
+
+            changes = (
+                {"monitor": "error", "error_gain_db": 24.0},
+                {"monitor": "input"},
+                {"mute": True},
+                {"mute": False, "monitor": "requantized"},
+            )
+            replies = []
+            for values in changes:
+                time.sleep(0.15)
+                replies.append(request({"op": "set", "values": values}))
+                assert replies[-1]["ok"], replies[-1]
+            assert "caution" in replies[0] and "hearing" in replies[0]["caution"].lower()
+            assert all("caution" not in r for r in replies[1:])
+            time.sleep(0.15)
+        assert run.terminate() == 0, run.log()
+    finally:
+        run.kill()
+    assert "caution" in run.log().lower()
+    words = sf.read(tap, dtype="int16", always_2d=True)[0]
+    settings = EngineSettings(bits=12, dither="tpdf", shaper="flat", seed=99)
+    assert_array_equal(_rerender(settings, source, words.shape[0], log_path), words)
+    frames = [r["at_frame"] for r in replies]
+    # While muted (after the 10 ms ramp) the device receives exact zeros.
+    ramp = int(round(0.010 * 48000))
+    assert np.all(words[frames[2] + ramp : frames[3]] == 0)
