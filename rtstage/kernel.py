@@ -392,6 +392,10 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
 
     frame0 = clock[CLK_FRAME]
     hpos = clock[CLK_HPOS]
+    if not auto_mute and nframes > 0:
+        for c in range(nch):
+            counts[c, CNT_ZERO_RUN] = 0
+            counts[c, CNT_AM_MUTED] = 0
     tap = vq.shape[0] >= nframes
     wtap = yq.shape[0] >= nframes
     # Unless this block continues the last one with the same seed, prime the
@@ -437,8 +441,11 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
                     xv = -1.0
                 for k in range(HIST_LEN):
                     hist[c, k] = 0.0
-            # Auto-mute: exact digital zero held for `hold` frames mutes the channel.
+            # Auto-mute: exact digital zero held for `hold` frames mutes the channel.  With
+            # auto-mute off (its counters cleared at the block start) only a ramp back in
+            # after switching it off needs work, so the common path touches no counter.
             muted = False
+            am_pos = 0
             if auto_mute:
                 if exact_zero:
                     if counts[c, CNT_ZERO_RUN] < hold:
@@ -446,18 +453,19 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
                 else:
                     counts[c, CNT_ZERO_RUN] = 0
                 muted = counts[c, CNT_ZERO_RUN] >= hold
-            else:
-                counts[c, CNT_ZERO_RUN] = 0
-            if muted:
-                if counts[c, CNT_AM_MUTED] == 0:
-                    for k in range(HIST_LEN):
-                        hist[c, k] = 0.0
-                counts[c, CNT_AM_MUTED] = 1
-                counts[c, CNT_AM_FRAMES] += 1
-            else:
-                counts[c, CNT_AM_MUTED] = 0
-            am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
-            counts[c, CNT_AM_POS] = am_pos
+                if muted:
+                    if counts[c, CNT_AM_MUTED] == 0:
+                        for k in range(HIST_LEN):
+                            hist[c, k] = 0.0
+                    counts[c, CNT_AM_MUTED] = 1
+                    counts[c, CNT_AM_FRAMES] += 1
+                else:
+                    counts[c, CNT_AM_MUTED] = 0
+                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
+                counts[c, CNT_AM_POS] = am_pos
+            elif counts[c, CNT_AM_POS] != 0:
+                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), 0)
+                counts[c, CNT_AM_POS] = am_pos
 
             v = xv * gain
             if tap:
