@@ -239,7 +239,8 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
     # The live path: switch the monitor to the added error (with make-up gain), to the input, mute and
     # back over the real socket while `rtstage run` taps what the device receives; the tap must equal the
     # offline re-render from the engine's own --automation-log (kernel: one computation, two drivers),
-    # and the first raise of error_gain_db above 0 dB carries the hearing-safety caution.
+    # and the first raise of error_gain_db above 0 dB carries the hearing-safety caution.  At bits=2:
+    # audition with an extreme word length, with the input A/B, works live.
     import json
     import socket
     import time
@@ -253,7 +254,7 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
     tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "changes.jsonl", "status.json", "run.err"))
     port = _free_port()
     run = RunProcess(jack_server, [
-        "--source", source, "--bits", "12", "--dither", "tpdf", "--shaper", "flat", "--seed", "99",
+        "--source", source, "--bits", "2", "--dither", "tpdf", "--shaper", "flat", "--seed", "99",
         "--blocksize", "128", "--tap", tap, "--status-file", st, "--automation-log", log_path,
         "--control-port", str(port), "--quiet"], err)
     try:
@@ -288,7 +289,7 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
         run.kill()
     assert "caution" in run.log().lower()
     words = sf.read(tap, dtype="int16", always_2d=True)[0]
-    settings = EngineSettings(bits=12, dither="tpdf", shaper="flat", seed=99)
+    settings = EngineSettings(bits=2, dither="tpdf", shaper="flat", seed=99)
     assert_array_equal(_rerender(settings, source, words.shape[0], log_path), words)
     frames = [r["at_frame"] for r in replies]
     # While muted (after the 10 ms ramp) the device receives exact zeros.
