@@ -245,9 +245,8 @@ class Engine:
         The word length may not change the container (a 16-bit engine cannot
         switch to 20 bits).  The seed is kept from the engine's start.
         """
-        settings = replace(settings, seed=self.settings.seed if hasattr(self, "state") else settings.seed)
-        settings = settings.resolved()
-        if hasattr(self, "state") and container_bits(settings.bits) > self.container:
+        settings = replace(settings, seed=self.settings.seed).resolved()
+        if container_bits(settings.bits) > self.container:
             raise RtstageError(f"bits={settings.bits} does not fit this engine's {self.container}-bit output")
         self.settings = settings
         st = self.state
