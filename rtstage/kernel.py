@@ -166,6 +166,7 @@ RAMP_ESTEP = 4
 RAMP_ETARGET = 5
 """Error-monitor gain the current ramp ends at."""
 RAMP_LEN = 8
+assert (RAMP_STEP, RAMP_TARGET, RAMP_ESTEP, RAMP_ETARGET) == (RAMP_GAIN + 1, RAMP_GAIN + 2, RAMP_EGAIN + 1, RAMP_EGAIN + 2)
 
 # --- per-channel counters -----------------------------------------------------------
 CNT_CLIPPED = 0
@@ -330,6 +331,21 @@ def _toward(pos, target):
 
 
 @njit(nogil=True, cache=True, inline="always")
+def _start_ramp(ramp, base, clock, clk_left, target, ramp_frames):
+    """Start a linear ramp to ``target`` if it is new.
+
+    ``ramp[base]``, ``ramp[base + 1]`` and ``ramp[base + 2]`` are the value,
+    the step per frame and the target (RAMP_GAIN/STEP/TARGET, or the
+    error-monitor's RAMP_EGAIN/ESTEP/ETARGET); ``clock[clk_left]`` counts the
+    frames left.
+    """
+    if target != ramp[base + 2]:
+        ramp[base + 2] = target
+        ramp[base + 1] = (target - ramp[base]) / ramp_frames
+        clock[clk_left] = ramp_frames
+
+
+@njit(nogil=True, cache=True, inline="always")
 def _round_clamp(value, lo, hi):
     """``floor(value + 1/2)`` limited to [lo, hi], as an int64."""
     r = np.floor(value + 0.5)
@@ -367,21 +383,14 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
     auto_mute = iparams[IP_AUTO_MUTE] != 0
     hold = max(iparams[IP_HOLD_FRAMES], 1)
 
-    # A new gain target starts a linear ramp at this block boundary.
+    # A new gain (or error-monitor gain) target starts a linear ramp at this block boundary.
     target = fparams[FP_GAIN]
-    if target != ramp[RAMP_TARGET]:
-        ramp[RAMP_TARGET] = target
-        ramp[RAMP_STEP] = (target - ramp[RAMP_GAIN]) / ramp_frames
-        clock[CLK_RAMP_LEFT] = ramp_frames
+    _start_ramp(ramp, RAMP_GAIN, clock, CLK_RAMP_LEFT, target, ramp_frames)
     gain = ramp[RAMP_GAIN]
     step = ramp[RAMP_STEP]
     ramp_left = clock[CLK_RAMP_LEFT]
-    # The same for the error monitor's make-up gain.
     etarget = fparams[FP_ERROR_GAIN]
-    if etarget != ramp[RAMP_ETARGET]:
-        ramp[RAMP_ETARGET] = etarget
-        ramp[RAMP_ESTEP] = (etarget - ramp[RAMP_EGAIN]) / ramp_frames
-        clock[CLK_ERAMP_LEFT] = ramp_frames
+    _start_ramp(ramp, RAMP_EGAIN, clock, CLK_ERAMP_LEFT, etarget, ramp_frames)
     egain = ramp[RAMP_EGAIN]
     estep = ramp[RAMP_ESTEP]
     eramp_left = clock[CLK_ERAMP_LEFT]

@@ -30,6 +30,7 @@ from numpy.testing import assert_array_equal
 
 from rtstage import Engine, EngineSettings
 from rtstage.control.automation import AutomationPlayer, load_automation, process_with_automation
+from rtstage.control.client import ControlClient
 from rtstage.control.midi import Control
 from rtstage.live.sources import generate
 
@@ -162,16 +163,8 @@ def test_midi_and_socket_changes_in_tap_at_logged_frames_and_rerender(jack_serve
         # soft takeover: meet the shown value, then move to 8 bits
         desk.send([0xB0, 102, bits_cc.to_position(16)], [0xB0, 102, bits_cc.to_position(8)])
         assert wait_until(lambda: os.path.exists(log_path) and '"bits":8' in open(log_path).read())
-        with socket.create_connection(("127.0.0.1", port), timeout=10) as sock, sock.makefile("rwb") as f:
-            f.readline()
-
-            def request(obj):
-                f.write((json.dumps(obj) + "\n").encode())
-                f.flush()
-                while True:
-                    reply = json.loads(f.readline())
-                    if "event" not in reply:
-                        return reply
+        with ControlClient("127.0.0.1", port, timeout_s=10) as client:
+            request = client.request  # one request, its reply (events in between are kept aside)
 
             refused = request({"op": "set", "values": {"bits": 20}})
             assert not refused["ok"] and "does not fit" in refused["error"]  # 16-bit container

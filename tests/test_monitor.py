@@ -241,13 +241,12 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
     # offline re-render from the engine's own --automation-log (kernel: one computation, two drivers),
     # and the first raise of error_gain_db above 0 dB carries the hearing-safety caution.  At bits=2:
     # audition with an extreme word length, with the input A/B, works live.
-    import json
-    import socket
     import time
 
     import soundfile as sf
     from numpy.testing import assert_array_equal
 
+    from rtstage.control.client import ControlClient
     from test_live_control import RunProcess, _free_port, _rerender
 
     source = "tone:freq_hz=997,level_dbfs=-60"  # a quiet tone: the error monitor is audible next to it
@@ -259,16 +258,8 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
         "--control-port", str(port), "--quiet"], err)
     try:
         run.wait_for_log("rtstage: running:")
-        with socket.create_connection(("127.0.0.1", port), timeout=10) as sock, sock.makefile("rwb") as f:
-            f.readline()
-
-            def request(obj):
-                f.write((json.dumps(obj) + "\n").encode())
-                f.flush()
-                while True:
-                    reply = json.loads(f.readline())
-                    if "event" not in reply:
-                        return reply
+        with ControlClient("127.0.0.1", port, timeout_s=10) as client:
+            request = client.request  # one request, its reply (events in between are kept aside)
 
             changes = (
                 {"monitor": "error", "error_gain_db": 24.0},

@@ -558,9 +558,20 @@ class LiveEngine:
         """Start the meter thread on the meter ring (once; it carries on across stream restarts)."""
         if getattr(self, "meter_thread", None) is not None or self.block.counter(S.C_METER_ON) == 0:
             return
+        from ..meters import MeterBank
         from .meterthread import MeterThread
 
         shaper = self.settings.shaper
+        # Compile (or load from the cache) every meter kernel now, with the real types: compiling
+        # them in the meter thread's first update would hold the GIL for seconds while audio runs,
+        # starving the control and MIDI threads.
+        s = self.settings
+        width = 16 if self.block.out_dtype == np.int16 else 32
+        warm = MeterBank(self.channels, self.samplerate, s.bits, shaper.coefs, s.dither, s.dither_scale,
+                         out_shift=width - s.bits, shaper_id=shaper.id)
+        frames = 4096
+        warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
+        warm.report()
         self._meter_shapers = {tuple(shaper.coefs): shaper.id}
         self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name).start()
 
