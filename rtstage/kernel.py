@@ -98,7 +98,9 @@ import numpy as np
 from numba import njit
 
 from ._philox import philox4x64
-from .shapers import MAX_TAPS
+
+MAX_TAPS = 32
+"""Most error-filter taps a shaper may have (the kernel's parameter block holds this many)."""
 
 # --- integer parameters (int64) -----------------------------------------------------
 IP_BITS = 0

@@ -48,23 +48,23 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from . import engine as _engine
+from . import settings as _settings
 from .dither import DITHER_KINDS
 from .errors import RtstageError
 from .shapers import PRESET_SHAPER_DIR, all_shapers
 
-MONITOR_MODES = _engine.MONITOR_MODES
+MONITOR_MODES = _settings.MONITOR_MODES
 """Values of ``monitor``: what the output carries (see the module docstring)."""
 
 # Ranges that EngineSettings.validate checks inline; read from the engine when it
 # exports them, so that there is one source of truth (tests/test_params.py checks
 # these bounds against EngineSettings.validate itself).
-MIN_GAIN_DB = _engine.MIN_GAIN_DB
-MAX_GAIN_DB = _engine.MAX_GAIN_DB
-MAX_DITHER_SCALE = _engine.MAX_DITHER_SCALE
+MIN_GAIN_DB = _settings.MIN_GAIN_DB
+MAX_GAIN_DB = _settings.MAX_GAIN_DB
+MAX_DITHER_SCALE = _settings.MAX_DITHER_SCALE
 
-MAX_ERROR_GAIN_DB = _engine.MAX_ERROR_GAIN_DB
-MAX_AUTO_MUTE_HOLD_S = _engine.MAX_AUTO_MUTE_HOLD_S
+MAX_ERROR_GAIN_DB = _settings.MAX_ERROR_GAIN_DB
+MAX_AUTO_MUTE_HOLD_S = _settings.MAX_AUTO_MUTE_HOLD_S
 
 ENGINE_FIELDS = ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale", "monitor", "error_gain_db", "mute",
                  "auto_mute", "auto_mute_hold_s")
@@ -127,7 +127,7 @@ class ParamSpec:
             d["max"] = self.maximum
         if self.kind == "seed":
             d["min"] = 0
-            d["max"] = _engine.SEED_MAX
+            d["max"] = _settings.SEED_MAX
         if self.kind == "enum":
             d["choices"] = list(self.allowed())
         return d
@@ -155,7 +155,7 @@ def _shaper_ids():
 
 
 _TABLE = (
-    ParamSpec("bits", "int", 16, "target word length", "bits", _engine.MIN_BITS, _engine.MAX_BITS),
+    ParamSpec("bits", "int", 16, "target word length", "bits", _settings.MIN_BITS, _settings.MAX_BITS),
     ParamSpec("dither", "enum", "tpdf", "dither kind", choices=tuple(DITHER_KINDS)),
     ParamSpec("shaper", "enum", "flat", "noise shaper id (built-in or preset file)", dynamic=True),
     ParamSpec("gain_db", "float", 0.0, "gain before the quantizer", "dB", MIN_GAIN_DB, MAX_GAIN_DB, when="ramped"),
@@ -220,7 +220,7 @@ def validate(name, value):
     if kind == "seed":
         if value is None:
             return None
-        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not 0 <= value <= _engine.SEED_MAX:
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not 0 <= value <= _settings.SEED_MAX:
             raise RtstageError(f"seed must be an integer from 0 to 2^64-1 or null, got {value!r}")
         return int(value)
     if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
@@ -274,7 +274,7 @@ def validate_values(values, current=None, force=False):
     merged.update(checked)
     # The Shaper object, not its id, so that validation reads no file (it runs on the server's loop).
     shaper = _shapers().get(merged["shaper"], merged["shaper"])
-    settings = _engine.EngineSettings(
+    settings = _settings.EngineSettings(
         bits=merged["bits"], dither=merged["dither"], shaper=shaper, seed=merged["seed"],
         gain_db=merged["gain_db"], dither_scale=merged["dither_scale"], force=bool(force),
         monitor=merged["monitor"], error_gain_db=merged["error_gain_db"], mute=merged["mute"],

@@ -83,7 +83,7 @@ def settings_from(preset=None, **overrides):
     Every value is checked by :meth:`EngineSettings.validate`; a bad value that
     came from the preset is reported with the preset's path and field.
     """
-    from .engine import EngineSettings
+    from .settings import EngineSettings
 
     values = {}
     if preset:

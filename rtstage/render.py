@@ -20,8 +20,11 @@ from dataclasses import dataclass
 import numpy as np
 import soundfile as sf
 
-from .engine import MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE, Engine, log
+from .engine import Engine
+from .engine.automation import AutomationPlayer, process_with_automation
 from .errors import RtstageError
+from .log import log
+from .settings import MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE
 
 DEFAULT_BLOCKSIZE = 4096
 
@@ -177,11 +180,7 @@ def render_file(
             raise RtstageError(f"format {fmt} cannot hold subtype {subtype}")
         engine = Engine(settings, infile.channels, infile.samplerate, container=info.container)
         meter = meters(engine) if meters else None
-        player = None
-        if automation:
-            from .control.automation import AutomationPlayer
-
-            player = AutomationPlayer(automation)
+        player = AutomationPlayer(automation) if automation else None
         out_dir = os.path.dirname(os.path.abspath(output_path))
         fd, tmp_path = tempfile.mkstemp(prefix=".rtstage-", suffix=os.path.splitext(output_path)[1], dir=out_dir)
         os.close(fd)
@@ -201,11 +200,10 @@ def render_file(
                 for inbuf, x in reader:
                     n = x.shape[0]
                     words = writer.acquire()
-                    segments = player.segments(engine.frame, n) if player else ((0, n, None),)
-                    for offset, count, values in segments:
-                        if values:
-                            engine.apply(_settings_with(engine.settings, values))
-                        engine.process(x[offset : offset + count], out=words[offset : offset + count], quantizer_in=vq[offset : offset + count])
+                    if player is not None:
+                        process_with_automation(engine, x, player, out=words, quantizer_in=vq)
+                    else:
+                        engine.process(x, out=words[:n], quantizer_in=vq[:n])
                     block = words[:n]
                     peak = max(peak, float(np.max(np.abs(vq[:n]), initial=0.0)))
                     if meter is not None:
@@ -345,12 +343,6 @@ class RenderResult:
     def peak_dbfs(self):
         """``peak`` in dBFS (sample peak; -inf for silence)."""
         return 20.0 * np.log10(self.peak) if self.peak > 0 else float("-inf")
-
-
-def _settings_with(settings, values):
-    from .params import settings_with
-
-    return settings_with(settings, values)
 
 
 def shaper_warnings(settings, samplerate, peak_dbfs=None):

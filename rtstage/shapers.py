@@ -31,9 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import RtstageError
-
-MAX_TAPS = 32
-"""Largest number of error-filter taps the kernel accepts."""
+from .kernel import MAX_TAPS  # the kernel owns its array sizes: at most MAX_TAPS error-filter taps
 
 
 @dataclass(frozen=True)

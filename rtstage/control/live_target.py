@@ -47,7 +47,8 @@ import threading
 import time
 
 from .. import params
-from ..engine import container_bits, log
+from ..engine import container_bits
+from ..log import log
 from ..errors import RtstageError
 from .target import ControlTarget
 

@@ -67,7 +67,7 @@ import tomllib
 from dataclasses import dataclass
 
 from .. import params
-from ..engine import log as _log
+from ..log import log as _log
 from ..errors import RtstageError
 
 NOTE_OFF = 0x80

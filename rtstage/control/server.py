@@ -39,7 +39,7 @@ import threading
 import time
 
 from .. import __version__
-from ..engine import log as _log
+from ..log import log as _log
 from ..errors import RtstageError
 from . import DEFAULT_CONTROL_PORT, PROTOCOL_VERSION
 from .protocol import Dispatcher, Session, encode, error_reply, parse_request

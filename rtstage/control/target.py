@@ -57,7 +57,8 @@ import time
 import numpy as np
 
 from .. import params
-from ..engine import container_bits, log
+from ..engine import container_bits
+from ..log import log
 from ..errors import RtstageError
 
 

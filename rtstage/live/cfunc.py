@@ -195,7 +195,7 @@ def _callback(input_ptr, output_ptr, frames, time_info, status_flags, user_data)
                          voidptr_to_address(user_data))
 
 
-_DEPENDS = ("kernel.py", "_philox.py", "shapers.py", "live/_ptr.py", "live/shared.py", "live/sources.py", "live/cfunc.py")
+_DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/shared.py", "live/sources.py", "live/cfunc.py")
 
 
 def source_digest():

@@ -29,7 +29,7 @@ import sys
 import threading
 import time
 
-from ..engine import EngineSettings
+from ..settings import EngineSettings
 
 SETTINGS = EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=20240601)
 """TPDF with 9-tap F-weighted shaping, the benchmark's settings."""

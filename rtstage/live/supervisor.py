@@ -49,7 +49,8 @@ from dataclasses import replace
 import numpy as np
 
 from .. import kernel as K
-from ..engine import container_bits, encode_params, log
+from ..engine import container_bits, encode_params
+from ..log import log
 from ..errors import RtstageError
 from . import shared as S
 from .sources import check_source, gen_params, load_source_file, parse_source

@@ -19,180 +19,20 @@ Examples
 (dtype('int16'), (512, 2))
 """
 
-import math
-import secrets
-import sys
-from dataclasses import dataclass, asdict, replace
+from dataclasses import replace
 
 import numpy as np
 
-from . import kernel as K
-from .dither import DITHER_KINDS, feedback_peak_lsb
-from .errors import RtstageError
-from .shapers import MAX_TAPS, Shaper, get_shaper
-
-MIN_BITS = 2
-MAX_BITS = 24
-MIN_SAMPLERATE = 8000
-MAX_SAMPLERATE = 384000
-MAX_CHANNELS = 64
-MIN_GAIN_DB = -120.0
-MAX_GAIN_DB = 40.0
-MAX_DITHER_SCALE = 4.0
-GAIN_RAMP_SECONDS = 0.010
-"""Duration of a gain (or mute) ramp: 10 ms, long enough to avoid zipper noise."""
-
-SEED_MAX = 2**64 - 1
-
-MONITOR_MODES = ("requantized", "error", "input")
-"""Values of ``monitor``, in kernel code order (``rtstage.kernel.MON_*``)."""
-MAX_ERROR_GAIN_DB = 90.0
-"""Largest make-up gain for the error monitor (the error of a 16-bit word sits near -101 dBFS)."""
-ERROR_CEILING_DBFS = -20.0
-"""Peak ceiling of the error monitor's safety limiter (a hard limit, not a setting)."""
-MAX_AUTO_MUTE_HOLD_S = 60.0
-"""Longest auto-mute hold time."""
-
-
-def new_seed():
-    """A random 64-bit seed (from the operating system's generator)."""
-    return secrets.randbits(64)
+from .. import kernel as K
+from ..dither import DITHER_KINDS, feedback_peak_lsb
+from ..errors import RtstageError
+from ..settings import (ERROR_CEILING_DBFS, GAIN_RAMP_SECONDS, MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE,
+                        MONITOR_MODES)
 
 
 def container_bits(bits):
     """Smallest integer container (16 or 24 bits) that holds a ``bits``-bit word."""
     return 16 if bits <= 16 else 24
-
-
-@dataclass(frozen=True)
-class EngineSettings:
-    """Everything that decides the engine's output words.
-
-    Parameters
-    ----------
-    bits : int
-        Target word length, 2..24.
-    dither : str
-        Dither kind id: ``none``, ``rpdf``, ``tpdf``, ``tpdf-hp``, ``gaussian``.
-    shaper : str or Shaper
-        Shaper id (built-in or preset), a path to a shaper file, or a Shaper.
-    seed : int or None
-        Dither seed, 0..2^64-1; None picks a random one at :meth:`resolved`.
-    gain_db : float
-        Gain before the quantizer, in dB.
-    dither_scale : float
-        Expert setting: dither amplitude relative to the textbook amplitude.
-    force : bool
-        Accept combinations that theory marks unsafe (see :meth:`validate`).
-    monitor : str
-        What the output carries: ``requantized`` (the words), ``error`` (the
-        added error with ``error_gain_db`` of make-up gain, hard-limited at
-        :data:`ERROR_CEILING_DBFS`) or ``input`` (the gained input at the
-        container's full resolution).  Changes crossfade over 10 ms.
-    error_gain_db : float
-        Make-up gain of the error monitor, 0..90 dB.  Caution: the error of a
-        short word with make-up gain can be loud; protect your hearing and
-        follow local codes and licensed practice for listening levels.
-    mute : bool
-        Ramp the output to exactly 0 (and back) over 10 ms.
-    auto_mute : bool
-        Mute a channel whose input has been exact digital zero for
-        ``auto_mute_hold_s``; ramped, per channel, shaper history cleared.
-    auto_mute_hold_s : float
-        Hold time of auto-mute, 0..60 s (at least one frame).
-    """
-
-    bits: int = 16
-    dither: str = "tpdf"
-    shaper: object = "flat"
-    seed: object = None
-    gain_db: float = 0.0
-    dither_scale: float = 1.0
-    force: bool = False
-    monitor: str = "requantized"
-    error_gain_db: float = 0.0
-    mute: bool = False
-    auto_mute: bool = False
-    auto_mute_hold_s: float = 0.5
-
-    def resolved(self):
-        """A copy with a concrete seed and a :class:`Shaper` object, validated."""
-        s = self
-        if s.seed is None:
-            s = replace(s, seed=new_seed())
-        if not isinstance(s.shaper, Shaper):
-            s = replace(s, shaper=get_shaper(s.shaper))
-        s.validate()
-        return s
-
-    @property
-    def shaper_id(self):
-        """The shaper's id whether ``shaper`` holds an id or a Shaper."""
-        return self.shaper.id if isinstance(self.shaper, Shaper) else str(self.shaper)
-
-    def validate(self):
-        """Raise :class:`RtstageError` naming the first setting that cannot be used.
-
-        Refused unless ``force``:
-
-        * noise shaping without dither: the fed-back error is then a
-          deterministic function of the signal, so the loop turns low-level
-          signals into distortion and idle tones instead of noise;
-        * a dither that is not i.i.d. (``tpdf-hp``) inside a feedback shaper:
-          the proof that TPDF makes the total error's first two moments
-          independent of the signal needs independent dither values, and
-          correlated dither inside the loop loses it (Lipshitz, Wannamaker &
-          Vanderkooy, "Dithered noise shapers and recursive digital filters",
-          JAES 52(11), 2004).
-        """
-        if isinstance(self.bits, bool) or not isinstance(self.bits, (int, np.integer)):
-            raise RtstageError(f"bits must be an integer, got {self.bits!r}")
-        if not MIN_BITS <= self.bits <= MAX_BITS:
-            raise RtstageError(f"bits must be between {MIN_BITS} and {MAX_BITS}, got {self.bits}")
-        if self.dither not in DITHER_KINDS:
-            raise RtstageError(f"unknown dither '{self.dither}' (known: {', '.join(DITHER_KINDS)})")
-        if self.seed is not None:
-            if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or not 0 <= self.seed <= SEED_MAX:
-                raise RtstageError(f"seed must be an integer from 0 to 2^64-1, got {self.seed!r}")
-        if self.monitor not in MONITOR_MODES:
-            raise RtstageError(f"unknown monitor {self.monitor!r} (known: {', '.join(MONITOR_MODES)})")
-        for name in ("mute", "auto_mute"):
-            if not isinstance(getattr(self, name), (bool, np.bool_)):
-                raise RtstageError(f"{name} must be true or false, got {getattr(self, name)!r}")
-        for name in ("gain_db", "dither_scale", "error_gain_db", "auto_mute_hold_s"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-                raise RtstageError(f"{name} must be a finite number, got {value!r}")
-        if not MIN_GAIN_DB <= self.gain_db <= MAX_GAIN_DB:
-            raise RtstageError(f"gain_db must be between {MIN_GAIN_DB:g} and +{MAX_GAIN_DB:g} dB, got {self.gain_db}")
-        if not 0.0 <= self.dither_scale <= MAX_DITHER_SCALE:
-            raise RtstageError(f"dither_scale must be between 0 and {MAX_DITHER_SCALE:g}, got {self.dither_scale}")
-        if not 0.0 <= self.error_gain_db <= MAX_ERROR_GAIN_DB:
-            raise RtstageError(f"error_gain_db must be between 0 and {MAX_ERROR_GAIN_DB:g} dB, got {self.error_gain_db}")
-        if not 0.0 <= self.auto_mute_hold_s <= MAX_AUTO_MUTE_HOLD_S:
-            raise RtstageError(f"auto_mute_hold_s must be between 0 and {MAX_AUTO_MUTE_HOLD_S:g} s, "
-                               f"got {self.auto_mute_hold_s}")
-        shaper = self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper)
-        if shaper.ntaps > MAX_TAPS:
-            raise RtstageError(f"shaper '{shaper.id}' has {shaper.ntaps} taps; at most {MAX_TAPS}")
-        if shaper.ntaps and not self.force:
-            if self.dither == "none" or self.dither_scale == 0.0:
-                raise RtstageError(
-                    f"shaper '{shaper.id}' without dither refused: undithered error feedback turns low-level "
-                    "signals into distortion and idle tones; use --dither tpdf, or --force to accept it"
-                )
-            if not DITHER_KINDS[self.dither].iid:
-                raise RtstageError(
-                    f"dither '{self.dither}' inside shaper '{shaper.id}' refused: it is not i.i.d., and correlated "
-                    "dither in a feedback loop no longer makes the error's moments signal-independent "
-                    "(Lipshitz, Wannamaker & Vanderkooy, JAES 2004); use --dither tpdf, or --force to accept it"
-                )
-
-    def to_dict(self):
-        """Plain-data form (for status, logs and presets)."""
-        d = asdict(self)
-        d["shaper"] = self.shaper_id
-        return d
 
 
 class Engine:
@@ -332,7 +172,7 @@ def encode_params(settings, samplerate, out_shift, iparams, fparams):
     iparams[K.IP_SEED] = np.uint64(settings.seed).view(np.int64)
     iparams[K.IP_OUT_SHIFT] = out_shift
     iparams[K.IP_RAMP_FRAMES] = max(1, round(GAIN_RAMP_SECONDS * samplerate))
-    fparams[K.FP_COEF0 : K.FP_COEF0 + MAX_TAPS] = 0.0
+    fparams[K.FP_COEF0 : K.FP_COEF0 + K.MAX_TAPS] = 0.0
     fparams[K.FP_COEF0 : K.FP_COEF0 + shaper.ntaps] = shaper.coefs
     fparams[K.FP_DITHER_SCALE] = settings.dither_scale
     fparams[K.FP_FEEDBACK_PEAK] = feedback_peak_lsb(kind, settings.dither_scale)
@@ -343,8 +183,3 @@ def encode_params(settings, samplerate, out_shift, iparams, fparams):
     iparams[K.IP_HOLD_FRAMES] = max(1, round(settings.auto_mute_hold_s * samplerate))
     fparams[K.FP_ERROR_GAIN] = 10.0 ** (settings.error_gain_db / 20.0)
     fparams[K.FP_ERROR_CEIL] = 10.0 ** (ERROR_CEILING_DBFS / 20.0)
-
-
-def log(message):
-    """One line on stderr (stdout is reserved for data in pipe mode)."""
-    print(f"rtstage: {message}", file=sys.stderr, flush=True)

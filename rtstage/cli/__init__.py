@@ -1,8 +1,10 @@
 """The ``rtstage`` command line.
 
-Each subcommand lives in its own module, which exposes ``register(subparsers)``:
-it adds its parser(s) and sets ``handler`` (a callable taking the parsed
-arguments and returning the exit status).  Errors raised as
+Each subcommand lives in its own module of this package, which exposes
+``register(subparsers)``: it adds its parser and sets ``handler`` (a callable
+taking the parsed arguments and returning the exit status).  Shared options
+are in :mod:`rtstage.cli.options`.  This package sits on top of every other
+layer; nothing in rtstage imports it.  Errors raised as
 :class:`rtstage.RtstageError` become one line on stderr and exit status 2.
 """
 
@@ -10,17 +12,19 @@ import argparse
 import importlib
 import sys
 
-from . import __version__
-from .errors import RtstageError
+from .. import __version__
+from ..errors import RtstageError
 
 COMMAND_MODULES = (
-    "rtstage.cli_render",
-    "rtstage.cli_demo",
-    "rtstage.cli_report",
-    "rtstage.cli_shaper",
-    "rtstage.control.cli",
-    "rtstage.live.cli",
-    "rtstage.cli_watch",
+    "rtstage.cli.render",
+    "rtstage.cli.pipe",
+    "rtstage.cli.demo",
+    "rtstage.cli.report",
+    "rtstage.cli.shaper",
+    "rtstage.cli.send",
+    "rtstage.cli.run",
+    "rtstage.cli.devices",
+    "rtstage.cli.watch",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 

@@ -3,8 +3,8 @@
 import json
 import os
 
-from .engine import log
-from .errors import RtstageError
+from ..errors import RtstageError
+from ..log import log
 
 
 def register(subparsers):
@@ -70,7 +70,7 @@ def run_report(args):
             raise RtstageError(f"channel {args.channel} is not in the report (1..{len(report['channels'])})")
         print("\n".join(summary_lines(label, report)))
     if args.plot:
-        from .meters.plots import write_plots
+        from ..meters.plots import write_plots
 
         for label, report in found:
             paths = write_plots(report, os.path.join(args.plot, label) if label else args.plot, channel=args.channel - 1)

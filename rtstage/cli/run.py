@@ -1,30 +1,18 @@
-"""``rtstage run`` and ``rtstage devices``."""
+"""``rtstage run``: the live engine on an audio device, with its control layer around it."""
 
 import json
 import os
 import sys
 
-from ..cli_common import add_engine_options, settings_from_args
-from ..control.cli import add_control_arguments, add_midi_arguments
-from ..engine import log
 from ..errors import RtstageError
-
-
-def _positive_float(text):
-    import argparse
-
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
-    if not value > 0:
-        raise argparse.ArgumentTypeError(f"must be positive, got {text}")
-    return value
+from ..log import log
+from .options import (add_control_arguments, add_engine_options, add_midi_arguments, midi_from_args, positive_float,
+                      server_from_args, settings_from_args)
 
 
 def register(subparsers):
-    """Add the ``run`` and ``devices`` subcommands."""
-    from .supervisor import DEFAULT_BLOCKSIZE
+    """Add the ``run`` subcommand."""
+    from ..live.supervisor import DEFAULT_BLOCKSIZE
 
     run = subparsers.add_parser(
         "run",
@@ -41,7 +29,7 @@ def register(subparsers):
     dev.add_argument("--samplerate", type=int, help="sample rate in Hz (default: the source file's, else the device's)")
     dev.add_argument("--blocksize", type=int, default=DEFAULT_BLOCKSIZE,
                      help=f"frames per callback, fixed (default {DEFAULT_BLOCKSIZE})")
-    dev.add_argument("--latency", type=_positive_float, help="suggested device latency in seconds")
+    dev.add_argument("--latency", type=positive_float, help="suggested device latency in seconds")
     dev.add_argument("--channels", type=int, help="channel count (default: the source file's, else 2)")
     dev.add_argument("--callback", choices=("compiled", "python"), default="compiled",
                      help="callback mode; 'python' is a diagnostic fallback, never real-time safe (default compiled)")
@@ -51,7 +39,7 @@ def register(subparsers):
                     "'tone[:freq_hz=F][,level_dbfs=L]' or 'noise[:level_dbfs=L][,seed=S]'")
     io.add_argument("--loop", action="store_true", help="loop a file source instead of stopping at its end")
     io.add_argument("--tap", help="write exactly the words sent to the device into this file (gaps in TAP.gaps.json)")
-    io.add_argument("--duration", type=_positive_float, help="stop after this many seconds")
+    io.add_argument("--duration", type=positive_float, help="stop after this many seconds")
     io.add_argument("--status-file", help="write the final status JSON here instead of stderr")
     io.add_argument("--quiet", action="store_true",
                     help="no meter display (by default a live display on a terminal, one status line a second otherwise)")
@@ -59,9 +47,9 @@ def register(subparsers):
                     help="start-up seconds whose xruns are reported apart (default 1.0)")
     ctl = run.add_argument_group("control (docs/protocol.md)")
     add_control_arguments(ctl)
-    ctl.add_argument("--control-rate-hz", type=_positive_float, default=200.0,
+    ctl.add_argument("--control-rate-hz", type=positive_float, default=200.0,
                      help="requests per second each control client may send (default 200)")
-    ctl.add_argument("--control-burst", type=_positive_float, default=400.0,
+    ctl.add_argument("--control-burst", type=positive_float, default=400.0,
                      help="requests a control client may send at once above that rate (default 400)")
     ctl.add_argument("--automation-log", metavar="FILE",
                      help="write every change the engine applied, at its sample index, to FILE "
@@ -69,14 +57,10 @@ def register(subparsers):
     add_midi_arguments(run.add_argument_group("MIDI control"))
     run.set_defaults(handler=run_command)
 
-    devices = subparsers.add_parser("devices", help="list audio devices and host APIs")
-    devices.add_argument("--json", action="store_true", help="print the listing as JSON")
-    devices.set_defaults(handler=devices_command)
-
 
 def run_command(args):
     """Handler of ``rtstage run``."""
-    from .supervisor import LiveEngine
+    from ..live.supervisor import LiveEngine
 
     settings = settings_from_args(args)
     if args.tap and os.path.exists(args.tap) and not args.force:
@@ -101,7 +85,7 @@ def run_command(args):
         log(f"warning: {message}")
     try:
         with ControlWiring(engine, args) as wiring:
-            from .display import LiveDisplay
+            from ..live.display import LiveDisplay
 
             display = LiveDisplay(engine, refresh_hz=10, quiet=args.quiet).start()
             try:
@@ -164,7 +148,6 @@ class ControlWiring:
     def __enter__(self):
         from ..control import DEFAULT_CONTROL_PORT
         from ..control.automation import AutomationWriter
-        from ..control.cli import midi_from_args, server_from_args
         from ..control.live_target import LiveTarget
         from ..control.protocol import Controller, PresetStore
 
@@ -211,22 +194,3 @@ class ControlWiring:
         if self.args.automation_log:
             out["automation_log"] = self.args.automation_log
         return out
-
-
-def devices_command(args):
-    """Handler of ``rtstage devices``."""
-    from .devices import list_devices
-
-    listing = list_devices()
-    if args.json:
-        print(json.dumps(listing, indent=1))
-        return 0
-    for api in listing["hostapis"]:
-        print(f"host API {api['index']}: {api['name']}")
-        for d in listing["devices"]:
-            if d["hostapi"] != api["name"]:
-                continue
-            mark = "  (!) " + d["warning"] if d["warning"] else ""
-            print(f"  {d['index']:3d}  {d['name']}  in {d['max_input_channels']}, out {d['max_output_channels']}, "
-                  f"{d['default_samplerate']:g} Hz{mark}")
-    return 0

@@ -25,10 +25,11 @@ import time
 import numpy as np
 import soundfile as sf
 
-from . import demo
-from .engine import EngineSettings, log
-from .errors import RtstageError
-from .render import render_array, words_to_float
+from .. import demo
+from ..errors import RtstageError
+from ..log import log
+from ..render import render_array, words_to_float
+from ..settings import EngineSettings
 
 OFFLINE_SETTINGS = (
     ("none", "flat"),
@@ -106,8 +107,8 @@ def run_offline(args):
 
 def _passes(samplerate):
     """(label, settings changes) of the three passes; the shaped pass uses the design for this rate."""
-    from .design import preset_for_rate
-    from .shapers import get_shaper
+    from ..design import preset_for_rate
+    from ..shapers import get_shaper
 
     shaped = preset_for_rate(get_shaper("thr9-48k"), samplerate)
     shaper_id = shaped.id if shaped is not None else "wannamaker-f9"
@@ -125,7 +126,7 @@ def _free_port():
 
 
 def _connect(port, proc, timeout_s):
-    from .control.client import ControlClient
+    from ..control.client import ControlClient
 
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
@@ -142,10 +143,10 @@ def _connect(port, proc, timeout_s):
 
 def run_live(args):
     """Play the programme through ``rtstage run`` and switch dither over the control socket."""
-    from .control.automation import load_automation
-    from .live.jackserver import JackDummyServer
-    from .meters import MeterBank, write_report
-    from .shapers import get_shaper
+    from ..control.automation import load_automation
+    from ..live.jackserver import JackDummyServer
+    from ..meters import MeterBank, write_report
+    from ..shapers import get_shaper
 
     out = args.out or tempfile.mkdtemp(prefix="rtstage-demo-")
     os.makedirs(out, exist_ok=True)
@@ -215,8 +216,7 @@ def run_live(args):
     starts = [0] + [frame for frame, values in changes if {"dither", "shaper"} & set(values)]
     n = min(words.shape[0], x.shape[0])
     # The same run, rendered offline from the logged changes: must equal the tap word for word.
-    from .control.automation import AutomationPlayer, process_with_automation
-    from .engine import Engine
+    from ..engine import AutomationPlayer, Engine, process_with_automation
 
     engine = Engine(EngineSettings(16, "rpdf", "flat", seed=args.seed), 2, samplerate)
     again = process_with_automation(engine, x[:n], AutomationPlayer(changes))
@@ -252,7 +252,7 @@ def run_live(args):
 def _plots(out, reports):
     """The meter figures of each pass into ``out/pass-N/`` (needs matplotlib; skipped with a note without)."""
     try:
-        from .meters.plots import write_plots
+        from ..meters.plots import write_plots
 
         for i, report in enumerate(reports):
             write_plots(report, os.path.join(out, f"pass-{i + 1}"))

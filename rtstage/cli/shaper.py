@@ -15,9 +15,9 @@ import json
 import math
 import sys
 
-from . import design as D
-from .errors import RtstageError
-from .shapers import all_shapers, get_shaper
+from .. import design as D
+from ..errors import RtstageError
+from ..shapers import all_shapers, get_shaper
 
 
 def register(subparsers):

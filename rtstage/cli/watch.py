@@ -11,8 +11,8 @@ import signal
 import sys
 import threading
 
-from .control import DEFAULT_CONTROL_PORT
-from .errors import RtstageError
+from ..control import DEFAULT_CONTROL_PORT
+from ..errors import RtstageError
 
 DEFAULT_WATCH_RATE_HZ = 10.0
 
@@ -58,9 +58,9 @@ class _Latest:
 
 def run_watch(args):
     """Handler of ``rtstage watch``; returns the exit status (0 on a clean stop)."""
-    from .control.client import ControlClient
-    from .control.server import read_token_file
-    from .live.display import LiveDisplay
+    from ..control.client import ControlClient
+    from ..control.server import read_token_file
+    from ..live.display import LiveDisplay
 
     token = read_token_file(args.token_file) if args.token_file else None
     latest = _Latest()
