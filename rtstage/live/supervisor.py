@@ -110,6 +110,9 @@ class LiveEngine:
 
     meter_ring_s = METER_RING_S
     """Meter ring capacity in seconds; set to 0 before :meth:`prepare` to run without meters."""
+    tap_writer = TapWriter
+    """Factory of the tap writer, ``(path, block, samplerate, bits, info)``; set before :meth:`prepare`
+    (the service layer puts its rotating writer here)."""
 
     def __init__(self, settings, device=None, input_device=None, output_device=None, hostapi=None, samplerate=None,
                  blocksize=DEFAULT_BLOCKSIZE, channels=None, latency=None, source=None, loop=False, tap=None,
@@ -198,7 +201,7 @@ class LiveEngine:
         if self.tap_path:
             info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
                     "source": src.describe() if src else "input"}
-            self.tap = TapWriter(self.tap_path, self.block, self.samplerate, self.settings.bits, info)
+            self.tap = self.tap_writer(self.tap_path, self.block, self.samplerate, self.settings.bits, info)
         self._prepared = True
         return self
 
