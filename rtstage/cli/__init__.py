@@ -52,7 +52,9 @@ def main(argv=None):
     try:
         return int(args.handler(args) or 0)
     except RtstageError as exc:
-        print(f"rtstage: {exc}", file=sys.stderr)
+        from .service.journal import error_line
+
+        print(error_line(exc), file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130

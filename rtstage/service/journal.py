@@ -62,7 +62,9 @@ def priority_of(line):
 
 
 def format_line(line, priority=None):
-    """``<N>line`` (the priority from :func:`priority_of` unless given)."""
+    """``<N>line`` (the priority from :func:`priority_of` unless given); a line already prefixed stays as it is."""
+    if len(line) >= 3 and line[0] == "<" and line[1].isdigit() and line[2] == ">":
+        return line
     return f"<{priority_of(line) if priority is None else int(priority)}>{line}"
 
 
