@@ -233,18 +233,23 @@ class RotatingTapWriter:
         self._thread.start()
 
     def _write(self, words):
-        """Write ``words`` (frames in tap order), splitting at segment boundaries."""
+        """Write ``words`` (frames in tap order), splitting at segment boundaries.
+
+        The next segment is opened when its first frame arrives, so a run
+        that ends on a boundary leaves no empty segment behind.
+        """
         pos = 0
         n = words.shape[0]
         while pos < n:
-            boundary = (self.frames_written // self.segment_frames + 1) * self.segment_frames
-            take = min(n - pos, boundary - self.frames_written)
+            end = self._seg["start_frame"] + self.segment_frames
+            if self.frames_written == end:
+                self._rotate(end)
+                end += self.segment_frames
+            take = min(n - pos, end - self.frames_written)
             self._file.write(words[pos:pos + take])
             self._seg["frames"] += take
             self.frames_written += take
             pos += take
-            if self.frames_written == boundary:
-                self._rotate(boundary)
 
     def _drain(self):
         from ..live.shared import ring_read
@@ -283,14 +288,6 @@ class RotatingTapWriter:
                 if gap["tap_frame"] >= self._seg["start_frame"]:
                     self._seg["gaps"].append(gap)
         self._close_segment()
-        if self._seg is not None and self._seg["frames"] == 0 and len(self.segments) > 1:
-            # a segment opened at the very end, with nothing in it
-            for victim in (self._seg["path"], self._seg["path"] + ".json"):
-                try:
-                    os.unlink(victim)
-                except FileNotFoundError:
-                    pass
-            self.segments = self.segments[:-1]
         summary = {
             "path": self.path,
             "frames": int(self.frames_written),
