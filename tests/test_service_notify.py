@@ -98,6 +98,7 @@ class Manager:
         self.sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
         self.sock.bind(b"\0" + self.name.encode())
         self.messages = []
+        self._cursor = 0  # messages before it were looked at by wait_for
 
     @property
     def env_value(self):
@@ -119,11 +120,17 @@ class Manager:
             self.messages.append(got[-1])
 
     def wait_for(self, prefix, timeout_s):
+        """The next message (after the last one found) starting with ``prefix``."""
         deadline = time.monotonic() + timeout_s
-        while time.monotonic() < deadline:
-            for t, m in self.collect(min(0.5, max(0.01, deadline - time.monotonic()))):
+        while True:
+            while self._cursor < len(self.messages):
+                t, m = self.messages[self._cursor]
+                self._cursor += 1
                 if m.startswith(prefix):
                     return t, m
+            if time.monotonic() >= deadline:
+                break
+            self.collect(min(0.5, max(0.01, deadline - time.monotonic())))
         raise AssertionError(f"no {prefix!r} within {timeout_s} s; got {[m for _, m in self.messages][-10:]}")
 
     def close(self):
@@ -168,6 +175,7 @@ def test_ready_watchdog_freeze_and_resume(jack_server_factory, tmp_path):
         try:
             manager.collect(1.0)  # a ping already on its way may still arrive
             frozen = manager.collect(3.0)
+            manager._cursor = len(manager.messages)
             assert pings(frozen) == [], frozen
         finally:
             os.kill(server.process.pid, signal.SIGCONT)
