@@ -73,6 +73,18 @@ def load_run_feed(args):
     return feed
 
 
+_EARLY_HUP = threading.Event()
+
+
+def _early_hup(signum, frame):
+    _EARLY_HUP.set()
+
+
+def hold_reload_signal():
+    """Until :class:`ServiceWiring` takes over, remember a SIGHUP instead of dying of it (start-up takes a while)."""
+    signal.signal(signal.SIGHUP, _early_hup)
+
+
 def settings_with_feed(settings, feed):
     """Engine settings with the feed's ``[engine]`` keys that have no option (monitor, mute, auto_mute ...)."""
     if feed is None:
@@ -177,6 +189,7 @@ class ServiceWiring:
         self._stop = threading.Event()
         self._reload_thread = None
         self._stopping_sent = False
+        self._realtime_checked = False
 
     # -- lifecycle ----------------------------------------------------------------------------
     def __enter__(self):
@@ -204,6 +217,9 @@ class ServiceWiring:
             for sig, handler in ((signal.SIGTERM, self._on_stop_signal), (signal.SIGINT, self._on_stop_signal),
                                  (signal.SIGHUP, self._on_hup)):
                 self._previous[sig] = signal.signal(sig, handler)
+            if _EARLY_HUP.is_set():
+                _EARLY_HUP.clear()
+                self._reload_wanted.set()
             self._reload_thread = threading.Thread(target=self._reload_loop, name="rtstage-reload", daemon=True)
             self._reload_thread.start()
             self.heartbeat = ServiceHeartbeat(
@@ -329,7 +345,9 @@ class ServiceWiring:
     # -- reload -------------------------------------------------------------------------------
     def _reload_loop(self):
         while not self._stop.is_set():
-            self._reload_wanted.wait()
+            if not self._reload_wanted.wait(0.5):
+                self._check_realtime()
+                continue
             if self._stop.is_set():
                 return
             self._reload_wanted.clear()
@@ -341,6 +359,21 @@ class ServiceWiring:
             except Exception as exc:  # a reload must never take the feed down
                 log(f"feed reload failed: {type(exc).__name__}: {exc}")
             self.notifier.ready(self.status_line())
+
+    def _check_realtime(self):
+        """Once audio flows: say so when no thread of the stream process got real-time scheduling."""
+        if self._realtime_checked or self.heartbeat is None or not self.heartbeat.ready_sent:
+            return
+        self._realtime_checked = True
+        from .metrics import thread_scheduling
+
+        worker = getattr(self.engine, "worker", None)
+        if worker is None or worker.poll() is not None:
+            return
+        threads = thread_scheduling(worker.pid, "stream")
+        if threads and not any(t["policy"] in ("fifo", "rr") for t in threads):
+            log("warning: no thread of the stream process got real-time scheduling; expect dropouts under load "
+                "(run the audio server with real-time priority; LimitRTPRIO= in the unit)")
 
     def reload(self):
         """Re-read the feed file and apply what can be applied to a running stream (see :mod:`.feed`)."""
