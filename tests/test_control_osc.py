@@ -34,6 +34,9 @@ def replies(client, timeout_s=2.0, until=None):
 def test_set_get_error_subscribe_over_udp():
     settings = EngineSettings(bits=16, dither="tpdf", seed=3)
     with control_stack(settings, driver=True) as stack, OscControl(stack.controller, port=0) as osc:
+        deadline = time.monotonic() + 120  # the first block may compile the kernel
+        while stack.engine.frame == 0 and time.monotonic() < deadline:
+            time.sleep(0.05)
         surface = SimpleUDPClient("127.0.0.1", osc.port)
         other = SimpleUDPClient("127.0.0.1", osc.port)
         surface.send_message("/rtstage/subscribe", [])

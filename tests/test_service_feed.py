@@ -76,7 +76,7 @@ def test_command_line_overrides_feed_even_with_default_value(tmp_path):
     assert args.samplerate == 44100 and args._feed_origin["samplerate"] == "feed"
     assert args.bits == 12 and args.control_port == 0
     assert args.midi_api == "auto" and args._feed_origin["midi_api"] == "default"
-    from rtstage.cli_common import settings_from_args
+    from rtstage.cli.options import settings_from_args
 
     settings = settings_with_feed(settings_from_args(args), feed)
     assert settings.bits == 12 and settings.auto_mute is True  # an [engine] key without an option

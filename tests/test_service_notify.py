@@ -22,7 +22,7 @@ from numpy.testing import assert_array_equal
 
 from rtstage import Engine, EngineSettings
 from rtstage.live.sources import generate
-from rtstage.service import journal
+from rtstage import log as journal
 from rtstage.service.notify import Notifier, notify_address, watchdog_interval_s
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))

@@ -14,7 +14,7 @@ import numpy as np
 import soundfile as sf
 from numpy.testing import assert_array_equal
 
-from rtstage.control.automation import load_automation
+from rtstage.control.automation import FORMAT_VERSION, load_automation
 from rtstage.live import shared as S
 from rtstage.live.tap import TapWriter
 from rtstage.service.rotate import (RotatingAutomationLog, RotatingTapWriter, list_segments, segment_frames_for,
@@ -100,7 +100,7 @@ def test_segment_length_from_size():
 
 def test_automation_segments_restate_state_and_route_by_frame(tmp_path):
     path = str(tmp_path / "auto.jsonl")
-    log = RotatingAutomationLog(path, SR, 1000, {"bits": 16, "dither": "tpdf", "gain_db": 0.0},
+    log = RotatingAutomationLog(path, SR, 1000, {"bits": 16, "dither": "tpdf", "gain_db": 0.0}, FORMAT_VERSION,
                                run_id="20261202T000000Z")
     log.write(256, {"bits": 12})
     log.write(2304, {"dither": "rpdf"})  # lands in segment 2000 (opened by the write itself)

@@ -25,6 +25,7 @@ COMMAND_MODULES = (
     "rtstage.cli.run",
     "rtstage.cli.devices",
     "rtstage.cli.watch",
+    "rtstage.cli.feed",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 
@@ -52,7 +53,7 @@ def main(argv=None):
     try:
         return int(args.handler(args) or 0)
     except RtstageError as exc:
-        from .service.journal import error_line
+        from ..log import error_line
 
         print(error_line(exc), file=sys.stderr)
         return 2

@@ -55,14 +55,23 @@ def register(subparsers):
                      help="write every change the engine applied, at its sample index, to FILE "
                      "(re-render offline with: rtstage render --automation FILE)")
     add_midi_arguments(run.add_argument_group("MIDI control"))
+    from ..service.runner import add_service_arguments
+
+    add_service_arguments(run)  # last: it defers the defaults a feed file may set
     run.set_defaults(handler=run_command)
 
 
 def run_command(args):
     """Handler of ``rtstage run``."""
     from ..live.supervisor import LiveEngine
+    from ..log import use_journal
+    from ..service.runner import (ServiceWiring, configure_engine, hold_reload_signal, load_run_feed,
+                                  settings_with_feed)
 
-    settings = settings_from_args(args)
+    in_journal = use_journal()
+    hold_reload_signal()
+    feed = load_run_feed(args)
+    settings = settings_with_feed(settings_from_args(args), feed)
     if args.tap and os.path.exists(args.tap) and not args.force:
         raise RtstageError(f"tap file {args.tap} exists; use --force to replace it")
     if args.source is None and args.loop:
@@ -73,6 +82,7 @@ def run_command(args):
         latency=args.latency, source=args.source, loop=args.loop, tap=args.tap, callback=args.callback,
         settle_s=args.settle,
     )
+    configure_engine(engine, args)
     if args.callback == "python":
         log("warning: --callback python runs Python in the audio thread (diagnosis only); expect dropouts")
     for path, what in ((args.automation_log, "automation log"),):
@@ -84,18 +94,20 @@ def run_command(args):
     for message in shaper_warnings(engine.settings, engine.samplerate):
         log(f"warning: {message}")
     try:
-        with ControlWiring(engine, args) as wiring:
+        with ControlWiring(engine, args) as wiring, ServiceWiring(engine, wiring, args, feed) as service:
             from ..live.display import LiveDisplay
 
-            display = LiveDisplay(engine, refresh_hz=10, quiet=args.quiet).start()
+            # in the journal, STATUS= carries the status line: no line a second
+            display = LiveDisplay(engine, refresh_hz=10, quiet=args.quiet or in_journal).start()
             try:
-                status = engine.run(duration_s=args.duration)
+                status = engine.run(duration_s=args.duration, install_signals=False)
             finally:
                 display.stop()
     finally:
         if engine.state != "stopped":
             engine.stop()
     status.update(wiring.summary())
+    status.update(service.summary())
     _headroom_warning(status.get("meters"))
     text = json.dumps(status)
     if args.status_file:
@@ -126,15 +138,16 @@ class ControlWiring:
     engine : LiveEngine
         Prepared engine (sample rate and container known).
     args : argparse.Namespace
-        ``rtstage run`` options: ``--control-*``, ``--midi-*``, ``--automation-log``.
+        ``rtstage run`` options: ``--control-*``, ``--midi-*``, ``--osc*``, ``--automation-log``
+        (with ``--tap-rotate-*``: the log rotates with the tap).
 
     Notes
     -----
     On entry: opens the automation log, starts the
     :class:`~rtstage.control.live_target.LiveTarget` housekeeping thread, the
-    socket server (unless ``--control-port 0``) and MIDI (when asked).  On
-    exit, after the engine stopped: MIDI, then the server, then the target
-    (which records what the last blocks applied), then the log.
+    socket server (unless ``--control-port 0``), MIDI and OSC (when asked).
+    On exit, after the engine stopped: OSC, MIDI, then the server, then the
+    target (which records what the last blocks applied), then the log.
     """
 
     def __init__(self, engine, args):
@@ -142,22 +155,27 @@ class ControlWiring:
         self.args = args
         self.writer = None
         self.target = None
+        self.controller = None
         self.server = None
         self.midi = None
+        self.osc = None
+        self.osc_status = None
 
     def __enter__(self):
         from ..control import DEFAULT_CONTROL_PORT
-        from ..control.automation import AutomationWriter
+        from ..control.automation import FORMAT_VERSION, AutomationWriter
         from ..control.live_target import LiveTarget
         from ..control.protocol import Controller, PresetStore
+        from ..service.runner import rotating_automation_log
 
         args = self.args
         try:
             if args.automation_log:
-                self.writer = AutomationWriter(args.automation_log, self.engine.samplerate)
+                self.writer = (rotating_automation_log(self.engine, args, FORMAT_VERSION)
+                               or AutomationWriter(args.automation_log, self.engine.samplerate))
             self.target = LiveTarget(self.engine, automation_log=self.writer).start()
             presets = PresetStore(args.control_preset_dir) if args.control_preset_dir else None
-            controller = Controller(self.target, presets)
+            controller = self.controller = Controller(self.target, presets)
             self.server = server_from_args(args, controller)
             if self.server is not None:
                 self.server.rate_hz = float(args.control_rate_hz)
@@ -172,19 +190,28 @@ class ControlWiring:
             self.midi = midi_from_args(args, controller)
             if self.midi is not None:
                 self.midi.start()
+            if args.osc:
+                from ..control.osc import OscControl
+                from ..service.metrics import parse_listen
+
+                host, port = parse_listen(args.osc, args.osc_listen_any, "--osc")
+                self.osc = OscControl(controller, host, port).start()
         except BaseException:
             self.__exit__(None, None, None)
             raise
         return self
 
     def __exit__(self, *exc):
-        for part, stop in ((self.midi, "stop"), (self.server, "stop"), (self.target, "stop"), (self.writer, "close")):
+        if self.osc is not None:
+            self.osc_status = self.osc.status()
+        for part, stop in ((self.osc, "stop"), (self.midi, "stop"), (self.server, "stop"), (self.target, "stop"),
+                           (self.writer, "close")):
             if part is not None:
                 try:
                     getattr(part, stop)()
                 except Exception as err:  # one failing part must not keep the others running
                     log(f"warning: stopping {type(part).__name__}: {err}")
-        self.midi = self.server = None
+        self.osc = self.midi = self.server = None
 
     def summary(self):
         """Status fields of the control layer (for the final status)."""
@@ -193,4 +220,6 @@ class ControlWiring:
             out["control_changes_applied"] = len(self.target.applied)
         if self.args.automation_log:
             out["automation_log"] = self.args.automation_log
+        if self.osc_status is not None:
+            out["osc"] = self.osc_status
         return out

@@ -48,7 +48,7 @@ References
 import threading
 
 from .. import params
-from ..engine import log
+from ..log import log
 from ..errors import RtstageError
 
 PARAM_PREFIX = "/rtstage/param/"

@@ -8,8 +8,6 @@ feed (:mod:`rtstage.service.feed`)
 notify (:mod:`rtstage.service.notify`)
     The service manager's notification protocol (READY, STATUS, WATCHDOG,
     RELOADING, STOPPING) and the heartbeat thread.
-journal (:mod:`rtstage.service.journal`)
-    Syslog priority prefixes when stderr goes to the journal.
 metrics (:mod:`rtstage.service.metrics`)
     Prometheus collector and HTTP endpoint.
 rotate (:mod:`rtstage.service.rotate`)
@@ -17,5 +15,7 @@ rotate (:mod:`rtstage.service.rotate`)
 runner (:mod:`rtstage.service.runner`)
     The glue ``rtstage run`` calls.
 
+The journal's priority prefixes live in :mod:`rtstage.log`, the OSC server
+in :mod:`rtstage.control.osc`, the ``feed`` command in :mod:`rtstage.cli.feed`.
 See docs/service.md.
 """

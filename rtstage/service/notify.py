@@ -47,7 +47,7 @@ import socket
 import threading
 import time
 
-from ..engine import log
+from ..log import log
 
 
 def notify_address(value):

@@ -316,6 +316,9 @@ class RotatingAutomationLog:
         The tap's frames per segment (the same grid).
     initial_values : dict
         Every parameter's value at sample index 0.
+    format_version : int
+        Automation file format version for the header
+        (:data:`rtstage.control.automation.FORMAT_VERSION`).
     keep : int or None
         Retention, as the tap's.
     run_id : str or None
@@ -331,8 +334,9 @@ class RotatingAutomationLog:
     line restating every parameter at its first frame.
     """
 
-    def __init__(self, path, samplerate, segment_frames, initial_values, keep=None, run_id=None):
+    def __init__(self, path, samplerate, segment_frames, initial_values, format_version, keep=None, run_id=None):
         self.path = path
+        self.format_version = format_version
         self.run_id = run_id
         self.samplerate = int(samplerate)
         self.segment_frames = int(segment_frames)
@@ -346,8 +350,6 @@ class RotatingAutomationLog:
             self._open(0)
 
     def _open(self, start):
-        from ..control.automation import FORMAT_VERSION
-
         if self._file is not None:
             self._file.close()
         name = segment_path(self.path, start, self.run_id)
@@ -356,7 +358,7 @@ class RotatingAutomationLog:
         except OSError as exc:
             raise RtstageError(f"cannot write automation log {name}: {exc.strerror}") from None
         self._start = int(start)
-        self._file.write(json.dumps({"rtstage_automation": FORMAT_VERSION, "samplerate": self.samplerate}) + "\n")
+        self._file.write(json.dumps({"rtstage_automation": self.format_version, "samplerate": self.samplerate}) + "\n")
         self._file.write(json.dumps({"at_frame": self._start, "values": self.values}, separators=(",", ":")) + "\n")
         self._file.flush()
         self.segments.append(name)

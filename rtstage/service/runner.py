@@ -1,8 +1,8 @@
 """``rtstage run`` as a service: feed file, sd_notify, metrics, OSC, signals, reload, rotation.
 
 This module holds the glue between the command line and the pieces of
-:mod:`rtstage.service` and :mod:`rtstage.control.osc`, so that the run
-command itself only calls four functions:
+:mod:`rtstage.service`, so that the run command itself only calls a few
+functions:
 
 ``add_service_arguments(parser)``
     ``--feed``, ``--metrics``, ``--metrics-listen-any``, ``--osc``,
@@ -14,9 +14,16 @@ command itself only calls four functions:
     unset, return the :class:`~rtstage.service.feed.Feed` (or None).
 ``configure_engine(engine, args)``
     Before :meth:`LiveEngine.prepare`: the rotating tap writer when asked.
+``rotating_automation_log(engine, args, format_version)``
+    The automation log in segments on the tap's grid (or None).
 ``ServiceWiring(engine, wiring, args, feed)``
     Around :meth:`LiveEngine.run` (``install_signals=False``): signals,
-    sd_notify, metrics, OSC, SIGHUP reload, memory locking.
+    sd_notify, metrics, SIGHUP reload, memory locking.
+
+The OSC server is control, not service: the command line starts it beside
+the socket and MIDI (``--osc`` is added here with the other service options).
+The service layer never imports the control layer; it drives the
+``controller`` and ``target`` objects the command line hands it.
 """
 
 import ctypes
@@ -27,7 +34,7 @@ import time
 from functools import partial
 
 from .. import params
-from ..engine import log
+from ..log import log
 from ..errors import RtstageError
 from . import feed as F
 
@@ -125,22 +132,23 @@ def configure_engine(engine, args):
     engine._rotation = holder
 
 
-def automation_writer_for(engine, args):
-    """The automation log writer for ``--automation-log`` (rotating with the tap when it rotates), or None."""
-    if not args.automation_log:
-        return None
-    if not rotation_wanted(args):
-        from ..control.automation import AutomationWriter
+def rotating_automation_log(engine, args, format_version):
+    """The automation log in segments on the tap's grid, when the tap rotates and a log is asked for; else None.
 
-        return AutomationWriter(args.automation_log, engine.samplerate)
+    ``format_version`` is the automation file format's version (the control
+    layer's ``FORMAT_VERSION``, passed in: the service layer does not import
+    the control layer).
+    """
+    if not args.automation_log or not rotation_wanted(args):
+        return None
     from .rotate import RotatingAutomationLog
 
     values = params.defaults()
     values.update(params.values_from_settings(engine.settings))
     frames = segment_frames(args, engine.samplerate, engine.channels, engine.settings.bits)
     holder = getattr(engine, "_rotation", {})
-    writer = RotatingAutomationLog(args.automation_log, engine.samplerate, frames, values, keep=args.tap_keep,
-                                   run_id=holder.get("run_id"))
+    writer = RotatingAutomationLog(args.automation_log, engine.samplerate, frames, values, format_version,
+                                   keep=args.tap_keep, run_id=holder.get("run_id"))
     holder["log"] = writer
     return writer
 
@@ -155,7 +163,7 @@ def lock_memory():
 
 
 class ServiceWiring:
-    """Signals, sd_notify, metrics, OSC and feed reload around a running :class:`LiveEngine`.
+    """Signals, sd_notify, metrics and feed reload around a running :class:`LiveEngine`.
 
     Parameters
     ----------
@@ -181,7 +189,6 @@ class ServiceWiring:
         self.watchdog_s = watchdog_interval_s()
         self.heartbeat = None
         self.metrics = None
-        self.osc = None
         self.reloads = 0
         self.stop_reason = None
         self._previous = {}
@@ -208,12 +215,6 @@ class ServiceWiring:
                 host, port = parse_listen(self.args.metrics, self.args.metrics_listen_any, "--metrics")
                 self.metrics = MetricsServer(self.snapshot, host, port).start()
                 log(f"metrics: serving {self.metrics.url}")
-            if self.args.osc:
-                from ..control.osc import OscControl
-                from .metrics import parse_listen
-
-                host, port = parse_listen(self.args.osc, self.args.osc_listen_any, "--osc")
-                self.osc = OscControl(self.wiring.controller, host, port).start()
             for sig, handler in ((signal.SIGTERM, self._on_stop_signal), (signal.SIGINT, self._on_stop_signal),
                                  (signal.SIGHUP, self._on_hup)):
                 self._previous[sig] = signal.signal(sig, handler)
@@ -238,7 +239,7 @@ class ServiceWiring:
             self.heartbeat.stop()
         if self._reload_thread is not None:
             self._reload_thread.join(10.0)
-        for part in (self.osc, self.metrics):
+        for part in (self.metrics,):
             if part is not None:
                 try:
                     part.stop()
@@ -336,8 +337,6 @@ class ServiceWiring:
         if self.heartbeat is not None:
             out["notify"] = {"ready": self.heartbeat.ready_sent, "watchdog_pings": self.heartbeat.pings,
                              "watchdog_missed": self.heartbeat.missed, "sent": self.notifier.sent}
-        if self.osc is not None:
-            out["osc"] = self.osc.status()
         if self.metrics is not None:
             out["metrics"] = self.metrics.url
         return out

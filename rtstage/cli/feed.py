@@ -26,7 +26,7 @@ def register(subparsers):
 
 
 def _run_parser():
-    from ..cli import build_parser
+    from . import build_parser
 
     parser = build_parser()
     for action in parser._subparsers._group_actions:
@@ -36,9 +36,9 @@ def _run_parser():
 
 def resolve(path):
     """The resolved configuration of feed ``path``: ``(feed, {section.key: (value, origin)}, settings dict)``."""
-    from . import feed as F
-    from .runner import load_run_feed, settings_with_feed
-    from ..cli_common import settings_from_args
+    from ..service import feed as F
+    from ..service.runner import load_run_feed, settings_with_feed
+    from .options import settings_from_args
 
     parser, _ = _run_parser()
     args = parser.parse_args(["run", "--feed", path])
@@ -96,7 +96,7 @@ def check_command(args):
 
 def example_command(args):
     """Handler of ``rtstage feed example``."""
-    from .feed import EXAMPLE
+    from ..service.feed import EXAMPLE
 
     sys.stdout.write(EXAMPLE)
     return 0
@@ -104,7 +104,7 @@ def example_command(args):
 
 def unit_command(args):
     """Handler of ``rtstage feed unit``."""
-    from .feed import unit_text
+    from ..service.feed import unit_text
 
     sys.stdout.write(unit_text(args.name, args.command, args.feed_dir))
     return 0
