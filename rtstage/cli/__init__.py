@@ -25,6 +25,7 @@ COMMAND_MODULES = (
     "rtstage.cli.run",
     "rtstage.cli.devices",
     "rtstage.cli.watch",
+    "rtstage.cli.linktest",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 

@@ -433,12 +433,14 @@ def _analyse_channel(ch, s, secs, bits, frames):
     grid_bits = bits - int(round(math.log2(step))) if step >= 1 else bits
 
     requant, bits_passed = _classify(e, ref, step, grid_bits, bits)
+    # Error statistics on the full-range words, whose low bits are uniform (the textbook's assumption).
+    e_full = e[sname[keep] == "full"]
     result.update({
         "polarity": polarity, "gain_db": gain_db, "dc_offset_lsb": dc_report, "clipped": clipped,
         "word_errors": word_errors, "requantization": requant, "bits_passed": bits_passed,
         "dither_in_silence": bool(dither_in_silence),
-        "error_mean_lsb": round(float(np.mean(e)), 4) if e.size else 0.0,
-        "error_rms_lsb": round(float(np.sqrt(np.mean(e * e))), 4) if e.size else 0.0,
+        "error_mean_lsb": round(float(np.mean(e_full)), 4) if e_full.size else 0.0,
+        "error_rms_lsb": round(float(np.sqrt(np.mean(e_full * e_full))), 4) if e_full.size else 0.0,
     })
     result["transparent"] = bool(
         result["source_channel"] == ch.index and word_errors == 0 and not slips and frames_missing == 0
