@@ -223,3 +223,19 @@ def test_cli_exit_codes_and_report(tmp_path, words, capsys):
         main(["linktest", "analyse", good])
     assert exc.value.code == 2
     assert capsys.readouterr().err.strip().startswith("rtstage:")
+
+
+def test_gain_and_dither_in_one_path(tmp_path):
+    # `rtstage render --gain-db -0.5 --bits 16` (TPDF): both changes are named, nothing else.
+    src, out = str(tmp_path / "seq.wav"), str(tmp_path / "air.wav")
+    assert main(["linktest", "generate", src, "--seed", str(SEED), "--seconds", "3"]) == 0
+    assert main(["render", src, out, "--bits", "16", "--gain-db", "-0.5", "--seed", "5"]) == 0
+    data, rate = sf.read(out, dtype="float64", always_2d=True)
+    check(analyse(data, rate, SEED, bits=BITS), {"gain_db": -0.5, "requantization": "dithered", "bits_passed": 16})
+
+
+def test_gain_then_truncation(words):
+    # Reference: numpy, a -0.5 dB gain and then floor to 16 bits (textbook truncation after a gain stage).
+    q = 256.0
+    check(_analyse(np.floor(words * 10 ** (-0.5 / 20) / q) * q),
+          {"gain_db": -0.5, "requantization": "truncation", "bits_passed": 16})

@@ -457,15 +457,27 @@ def _classify(e, ref, step, grid_bits, bits):
     if peak <= 1e-9 or (step == 1 and peak <= 0.5 + slack):
         return "none", bits
     q = float(step)
+    c = ref + e
     integer_ref = np.max(np.abs(ref - np.round(ref))) <= 1e-9
-    if integer_ref and step > 1:
-        c = ref + e
-        if np.all(np.abs(c - q * np.floor(ref / q)) <= 1e-9) or np.all(np.abs(c - q * np.trunc(ref / q)) <= 1e-9):
-            return "truncation", grid_bits
+    if step > 1:
+        if integer_ref:
+            # Exact source words: truncation is an exact match, floor (two's complement) or toward zero.
+            for cut in (np.floor, np.trunc):
+                if np.all(np.abs(c - q * cut(ref / q)) <= 1e-9):
+                    return "truncation", grid_bits
+        else:
+            # After a gain the fitted gain's own error blurs the step boundaries by a little: truncation
+            # is then an error inside (-q, 0] (with that slack) whose mean is -q/2.
+            slack += 0.01 * q
+            if float(np.max(e)) <= slack and float(np.min(e)) >= -q - slack and abs(float(np.mean(e)) + q / 2) < 0.05 * q:
+                return "truncation", grid_bits
     if step > 1 and peak <= q / 2 + slack:
         return "rounding", grid_bits
-    keys = np.mod(np.round(ref), q) if integer_ref else np.round(ref * 1e6)
-    deterministic = _deterministic(keys, np.round(e, 9))
+    if integer_ref:
+        # Words equal modulo the step must get equal errors unless the requantizer adds something random.
+        deterministic = _deterministic(np.mod(np.round(ref), q), np.round(e, 9))
+    else:
+        deterministic = False  # not rounding (errors beyond half a step) and not truncation, by the tests above
     mean = float(np.mean(e))
     sd = float(np.std(e))
     if not deterministic and step > 1 and abs(mean) <= 4 * sd / math.sqrt(e.size) + 0.02 * q and sd <= DITHER_MAX_RMS_STEPS * q:
