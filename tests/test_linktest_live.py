@@ -54,15 +54,17 @@ class Wiring:
         ports = self.client.get_ports(client + ":", is_audio=True, is_input=is_input, is_output=not is_input)
         return sorted((p for p in ports if p.name.split(":")[0] == client), key=lambda p: p.name)
 
-    def wait_new_client(self, known, timeout_s=120, proc=None):
+    def wait_new_client(self, known, timeout_s=180, proc=None, err_path=None):
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:
             new = [c for c in self.clients() - set(known) if self.ports(c, True) and self.ports(c, False)]
             if new:
                 return new[0]
-            assert proc is None or proc.poll() is None, "the process ended before its ports appeared"
+            if proc is not None and proc.poll() is not None:
+                text = open(err_path).read() if err_path else ""
+                raise AssertionError(f"the process ended (status {proc.returncode}) before its ports appeared: {text}")
             time.sleep(0.005)
-        raise AssertionError("no new JACK client appeared")
+        raise AssertionError("no new JACK client appeared" + (": " + open(err_path).read() if err_path else ""))
 
     def isolate(self, client):
         for port in self.ports(client, False) + self.ports(client, True):
@@ -103,7 +105,7 @@ def test_direct_connection_is_transparent(server, tmp_path):
     try:
         known = wiring.clients() | {"linktest-wiring"}
         proc, report_path = _linktest(server, tmp_path)
-        me = wiring.wait_new_client(known, proc=proc)
+        me = wiring.wait_new_client(known, proc=proc, err_path=tmp_path / "linktest.err")
         wiring.isolate(me)
         wiring.route(me, me)  # its own outputs straight into its own inputs
         code, out, err = _finish(proc, tmp_path)
@@ -132,13 +134,13 @@ def test_through_a_second_rtstage_at_16_bits_tpdf(server, tmp_path):
                  "--blocksize", str(PERIOD), "--bits", "16", "--dither", "tpdf", "--seed", "31", "--quiet",
                  "--control-port", "0", "--duration", "120"],
                 env=server.client_env(), cwd=ROOT, stdout=subprocess.DEVNULL, stderr=err)
-        box = wiring.wait_new_client(known, proc=middle)
+        box = wiring.wait_new_client(known, proc=middle, err_path=middle_err)
         deadline = time.monotonic() + 120
         while "rtstage: running:" not in middle_err.read_text():
             assert middle.poll() is None and time.monotonic() < deadline, middle_err.read_text()
             time.sleep(0.05)
         proc, report_path = _linktest(server, tmp_path)
-        me = wiring.wait_new_client(known | {box}, proc=proc)
+        me = wiring.wait_new_client(known | {box}, proc=proc, err_path=tmp_path / "linktest.err")
         wiring.isolate(me)
         wiring.isolate(box)
         wiring.route(me, box)
