@@ -167,6 +167,22 @@ def test_one_dropped_and_one_inserted_sample(words):
     assert [c["word_errors"] for c in report["channels"]] == [0, 0]
 
 
+def test_a_lost_block_and_an_inserted_block(words):
+    # Reference: numpy.delete removes 256 frames from source frame 60000 on (a lost packet); numpy.insert
+    # puts 48 zeros before source frame 90256 (capture index 90000: a concealed gap of another link).
+    capture = np.delete(words, np.arange(60000, 60256), axis=0)
+    capture = np.insert(capture, 90000, np.zeros((48, 2)), axis=0)
+    slips = [{"frame": 60000, "capture_frame": 60000, "count": -256}, {"frame": 90256, "capture_frame": 90000, "count": 48}]
+    check(_analyse(capture), {"slips": slips})
+
+
+def test_a_slip_in_a_requantized_path(words):
+    # Rounding to 16 bits (numpy) and one dropped frame: both named, the drop at its exact frame.
+    capture = np.delete(np.floor(words / 256 + 0.5) * 256, 70000, axis=0)
+    slips = [{"frame": 70000, "capture_frame": 70000, "count": -1}]
+    check(_analyse(capture), {"slips": slips, "requantization": "rounding", "bits_passed": 16})
+
+
 def test_slow_resampling(words):
     # Reference: scipy.signal.resample_poly(x, up, down) changes the rate by up/down, so the capture has
     # (up/down - 1) * 10^6 ppm more samples per source sample; its passband gain is 1.

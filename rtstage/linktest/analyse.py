@@ -72,6 +72,9 @@ SEGMENT_FRAMES = 2048
 SEARCH_FRAMES = 16
 """Lag searched around the previous segment's, each side (drift up to 8000 ppm, slips of up to 16 frames)."""
 
+WIDE_SEARCH_FRAMES = 8192
+"""Lag searched when the narrow search fails (a lost or inserted block of up to this many frames)."""
+
 DRIFT_MIN_PPM = 1.0
 """Smaller slopes are reported as 0: over a few seconds they move the alignment by well under a frame."""
 
@@ -264,35 +267,57 @@ def _segments(secs, frames):
     return np.array(starts, dtype=np.int64)
 
 
+def _match(x, ref, lo, hi):
+    """Best start in ``x[lo:hi]`` for ``ref``: (start, dot) or None when the correlation stays below 0.5."""
+    lo, hi = max(lo, 0), min(hi, x.shape[0])
+    if hi - lo < ref.shape[0]:
+        return None
+    window = x[lo:hi]
+    if hi - lo - ref.shape[0] <= 2 * SEARCH_FRAMES:
+        dots = np.lib.stride_tricks.sliding_window_view(window, ref.shape[0]) @ ref
+    else:
+        dots = signal.correlate(window, ref, mode="valid", method="fft")
+    k = int(np.argmax(np.abs(dots)))
+    seg = window[k : k + ref.shape[0]]
+    energy = float(np.dot(ref, ref))
+    if energy == 0 or abs(dots[k]) < 0.5 * math.sqrt(energy * float(np.dot(seg, seg)) + 1e-30):
+        return None
+    return lo + k, float(np.dot(seg, ref))
+
+
 def _track(ch, s, starts):
-    """Integer lag, fractional delay and LS gain of each segment; None where the capture has no data."""
+    """Integer lag, fractional delay and LS gain of each segment; None where the capture has no match.
+
+    The lag is searched within 16 frames of the previous segment's, then, if that fails (a lost or
+    inserted block), within 8192 frames.
+    """
     x = ch.x
-    n = x.shape[0]
     lag = int(ch.head)
     out = []
     for u in starts:
         ref = s[u : u + SEGMENT_FRAMES]
-        lo = u + lag - SEARCH_FRAMES
-        hi = u + lag + SEARCH_FRAMES + SEGMENT_FRAMES
-        if lo < 0 or hi > n:
+        hit = _match(x, ref, u + lag - SEARCH_FRAMES, u + lag + SEARCH_FRAMES + SEGMENT_FRAMES)
+        if hit is None:
+            hit = _match(x, ref, u + lag - WIDE_SEARCH_FRAMES, u + lag + WIDE_SEARCH_FRAMES + SEGMENT_FRAMES)
+        if hit is None:
             out.append(None)
             continue
-        view = np.lib.stride_tricks.sliding_window_view(x[lo:hi], SEGMENT_FRAMES)
-        dots = view @ ref
-        k = int(np.argmax(np.abs(dots)))
-        energy = float(np.dot(ref, ref))
-        if energy == 0 or abs(dots[k]) < 0.5 * math.sqrt(energy * float(np.dot(view[k], view[k])) + 1e-30):
-            out.append(None)
-            continue
-        lag = lo - u + k
-        seg = x[u + lag : u + lag + SEGMENT_FRAMES]
-        frac = _fractional_delay(np.sign(dots[k]) * seg, ref)
-        out.append((lag, lag + frac, float(dots[k] / energy)))
+        start, dot = hit
+        lag = start - u
+        seg = x[start : start + SEGMENT_FRAMES]
+        frac = _fractional_delay(np.sign(dot) * seg, ref)
+        out.append((lag, lag + frac, dot / float(np.dot(ref, ref))))
     return out
 
 
 def _locate_slip(x, s, d1, d2, u_from, u_to, g):
-    """Exact capture index of a slip between source frames u_from..u_to (offsets d1 before, d2 after)."""
+    """Exact capture index of a slip between source frames u_from..u_to (offsets d1 before, d2 after).
+
+    The split minimises the squared error of the words before it (offset d1) and after it (offset
+    d2); inserted samples (d2 > d1) match neither and are left out.  Among equal splits the latest
+    is taken, so that a repeated sample counts as the inserted one.
+    """
+    count = d2 - d1
     t_lo = max(u_from + min(d1, d2), 0)
     t_hi = min(u_to + max(d1, d2), x.shape[0])
     t = np.arange(t_lo, t_hi)
@@ -302,8 +327,9 @@ def _locate_slip(x, s, d1, d2, u_from, u_to, g):
     e2 = (x[t] - g * s[i2]) ** 2
     before = np.concatenate(([0.0], np.cumsum(e1)))
     after = np.concatenate((np.cumsum(e2[::-1])[::-1], [0.0]))
-    cost = before + after
-    k = int(np.argmin(cost))
+    skip = max(count, 0)
+    cost = before[: before.shape[0] - skip] + after[skip:]
+    k = int(cost.shape[0] - 1 - np.argmin(cost[::-1]))
     return int(t_lo + k)
 
 
