@@ -255,3 +255,17 @@ def test_gain_then_truncation(words):
     q = 256.0
     check(_analyse(np.floor(words * 10 ** (-0.5 / 20) / q) * q),
           {"gain_db": -0.5, "requantization": "truncation", "bits_passed": 16})
+
+
+def test_a_16_bit_sequence(tmp_path):
+    # A 16-bit sequence carried in a 24-bit file is transparent at 16 bits; `rtstage render --bits 12`
+    # (TPDF, in a 16-bit container) passes 12 bits, dithered.
+    src, wide, short = (str(tmp_path / n) for n in ("seq16.wav", "wide.wav", "short.wav"))
+    assert main(["linktest", "generate", src, "--seed", "16", "--bits", "16", "--seconds", "2"]) == 0
+    data, rate = sf.read(src, dtype="float64", always_2d=True)
+    sf.write(wide, data, rate, subtype="PCM_24")
+    assert main(["linktest", "analyse", wide, "--seed", "16", "--bits", "16"]) == 0
+    assert main(["render", src, short, "--bits", "12", "--seed", "2"]) == 0
+    report = analyse(sf.read(short, dtype="float64", always_2d=True)[0], rate, 16, bits=16)
+    assert [(c["requantization"], c["bits_passed"], c["gain_db"], c["slips"]) for c in report["channels"]] == \
+        [("dithered", 12, 0.0, [])] * 2
