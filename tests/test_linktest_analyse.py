@@ -183,15 +183,20 @@ def test_a_slip_in_a_requantized_path(words):
     check(_analyse(capture), {"slips": slips, "requantization": "rounding", "bits_passed": 16})
 
 
-def test_slow_resampling(words):
+@pytest.mark.parametrize("up,down", [(9601, 9600), (19999, 20000)])
+def test_slow_resampling(words, up, down):
     # Reference: scipy.signal.resample_poly(x, up, down) changes the rate by up/down, so the capture has
-    # (up/down - 1) * 10^6 ppm more samples per source sample; its passband gain is 1.
-    up, down = 9601, 9600
+    # (up/down - 1) * 10^6 ppm more samples per source sample (+104.2 and -50.0 ppm); its passband gain is 1.
     capture = resample_poly(words, up, down, axis=0)
     report = _analyse(capture)
     for ch in report["channels"]:
         assert abs(ch["drift_ppm"] - (up / down - 1) * 1e6) < 0.5
-    drift = [{"drift_ppm": ch["drift_ppm"], "requantization": "other", "bits_passed": 0} for ch in report["channels"]]
+        # scipy's anti-alias filter (Kaiser-windowed sinc, beta 5) itself ripples by about +-0.012 dB in the
+        # passband (measured with sines through resample_poly at 0.05, 0.1 and 0.2 fs); the gain the
+        # analyser reads may differ from 0 dB by that much.
+        assert abs(ch["gain_db"]) <= 0.02
+    drift = [{"drift_ppm": ch["drift_ppm"], "gain_db": ch["gain_db"], "requantization": "other", "bits_passed": 0}
+             for ch in report["channels"]]
     check(report, drift)
 
 

@@ -355,8 +355,9 @@ def _analyse_channel(ch, s, secs, bits, frames):
         jumps[1:] = np.round(dt - rate * du).astype(np.int64)
     steady = taus - np.cumsum(jumps)
     drift_ppm = 0.0
+    slope = 0.0
     if len(valid) > 2:
-        slope = np.polyfit(us, steady, 1)[0]
+        slope = float(np.polyfit(us, steady, 1)[0])
         drift_ppm = round(float(slope) * 1e6, 1)
         if abs(drift_ppm) < DRIFT_MIN_PPM:
             drift_ppm = 0.0
@@ -392,6 +393,8 @@ def _analyse_channel(ch, s, secs, bits, frames):
     if missing_sources:
         present[np.clip(np.array(missing_sources), 0, frames - 1)] = False
     t = u + offset
+    if drifting:
+        t = t + np.round(slope * u).astype(np.int64)  # nearest capture frame on the drifting clock
     present &= (t >= 0) & (t < x.shape[0])
     frames_missing = int(frames - present.sum() - len(missing_sources))
     su = u[present]
