@@ -136,6 +136,7 @@ def test_gain_in_a_fixed_point_path(words):
 
 
 def test_polarity_inverted_on_one_channel(words):
+    # Reference: numpy negates channel 2 (exact: the sequence never uses -2^(N-1)).
     capture = words.copy()
     capture[:, 1] = -capture[:, 1]
     report = _analyse(capture)
@@ -145,12 +146,14 @@ def test_polarity_inverted_on_one_channel(words):
 
 
 def test_swapped_channels(words):
+    # Reference: numpy swaps the two columns; each captured channel carries the other's words.
     report = _analyse(words[:, ::-1].copy())
     check(report, {}, sources=(1, 0))
     assert not any(c["transparent"] for c in report["channels"])
 
 
 def test_duplicated_channel_is_recognised(words):
+    # Reference: numpy copies channel 1 onto channel 2.
     report = _analyse(np.stack([words[:, 0], words[:, 0]], axis=1))
     check(report, {}, sources=(0, 0))
     assert "sequence channel 2 did not arrive" in report["summary"]
@@ -217,6 +220,7 @@ def test_hard_clipping(words):
 
 
 def test_not_found(words):
+    # Noise from numpy's generator, and the sequence of another seed, hold no marker of this seed.
     rng = np.random.default_rng(9)
     report = analyse(rng.normal(0, 0.2, (200000, 2)), SR, SEED, bits=BITS)
     assert report["found"] is False and report["transparent"] is False and report["latency_frames"] is None
