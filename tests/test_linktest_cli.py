@@ -42,3 +42,14 @@ def test_usage_errors_are_one_line(capsys):
     assert exc.value.code == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("rtstage: linktest generate:") and "--seed" in err[0]
+
+
+def test_run_with_an_unknown_device_fails_cleanly(tmp_path):
+    env = dict(os.environ, JACK_NO_START_SERVER="1")
+    result = subprocess.run([sys.executable, "-m", "rtstage", "linktest", "run", "--output-device", "no-such-device-here",
+                             "--input-device", "no-such-device-here", "--seed", "1", "--seconds", "1"],
+                            cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
+    assert result.returncode == 2
+    last = result.stderr.strip().splitlines()[-1]
+    assert last.startswith("rtstage:") and "no-such-device-here" in last
+    assert "caution" in result.stderr  # said before anything plays
