@@ -26,6 +26,7 @@ COMMAND_MODULES = (
     "rtstage.cli.devices",
     "rtstage.cli.watch",
     "rtstage.cli.feed",
+    "rtstage.cli.linktest",
 )
 """Modules that register subcommands, in the order ``--help`` lists them."""
 
