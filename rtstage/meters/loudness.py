@@ -478,3 +478,55 @@ def parse_target(text):
     if not (-100.0 < integrated < 0.0) or not 0.0 <= tolerance <= 20.0:
         raise RtstageError(f"loudness target {text!r}: the loudness must lie in -100..0 LUFS and the tolerance in 0..20 LU")
     return LoudnessTarget(integrated, tolerance, true_peak, lra, text)
+
+
+# Report and display ---------------------------------------------------------------------------
+
+def loudness_report(meter, true_peaks=None, target=None):
+    """The report's ``loudness`` section: the meter's readings, the programme's true peak, the verdict.
+
+    Parameters
+    ----------
+    meter : LoudnessMeter
+        The programme's meter.
+    true_peaks : sequence of float or None
+        Per-channel true peaks (linear, full scale = 1); their maximum is the
+        programme's ``true_peak_dbtp``.
+    target : LoudnessTarget or None
+        When given, ``target`` holds :meth:`LoudnessTarget.check`'s result.
+    """
+    report = meter.report()
+    peak = None
+    if true_peaks is not None and len(true_peaks):
+        top = float(np.max(true_peaks))
+        peak = 20.0 * math.log10(top) if top > 0.0 else None
+    report["true_peak_dbtp"] = peak
+    report["target"] = None if target is None else target.check(
+        report["integrated_lufs"], peak, report["loudness_range_lu"])
+    return report
+
+
+def _num(value, digits=1, width=6):
+    return f"{value:{width}.{digits}f}" if value is not None else "-".rjust(width)
+
+
+def verdict_text(verdict):
+    """``PASS``, ``FAIL`` or ``WAIT`` (integrated loudness not yet defined) for a target check."""
+    if verdict is None:
+        return ""
+    return {True: "PASS", False: "FAIL", None: "WAIT"}[verdict["pass"]]
+
+
+def loudness_line(section):
+    """One line for the displays from a report's ``loudness`` section (empty string without one)."""
+    if not section:
+        return ""
+    text = (f"loudness LUFS  M {_num(section.get('momentary_lufs'))}  S {_num(section.get('short_term_lufs'))}  "
+            f"I {_num(section.get('integrated_lufs'))}  LRA {_num(section.get('loudness_range_lu'), width=4)} LU  "
+            f"TP {_num(section.get('true_peak_dbtp'))} dBTP")
+    verdict = section.get("target")
+    if verdict:
+        name = (verdict.get("target") or {}).get("name", "target")
+        failed = [c["what"] for c in verdict.get("checks", []) if c.get("pass") is False]
+        text += f"  {name} {verdict_text(verdict)}" + (f" ({', '.join(failed)})" if failed else "")
+    return text
