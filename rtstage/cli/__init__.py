@@ -20,6 +20,7 @@ COMMAND_MODULES = (
     "rtstage.cli.pipe",
     "rtstage.cli.demo",
     "rtstage.cli.report",
+    "rtstage.cli.measure",
     "rtstage.cli.shaper",
     "rtstage.cli.send",
     "rtstage.cli.run",

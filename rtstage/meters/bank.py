@@ -267,6 +267,7 @@ class MeterBank:
         pattern = self._bits.pattern()
         clipped, nonfinite = self._engine_counts if self._engine_counts is not None else (self._clipped, self._nonfinite)
         bin_means = self._modulation.bin_means_lsb2()
+        bin_stderr = self._modulation.bin_stderr_lsb2()
         limit = self.peak_limit_dbfs if math.isfinite(self.peak_limit_dbfs) else None
 
         channels = []
@@ -290,6 +291,8 @@ class MeterBank:
                     "bit_pattern": pattern[c],
                     "headroom_exceeded": _exceeds(self.frames, amplitude_to_dbfs(in_sample[c]), limit),
                     "noise_modulation_bins_lsb2": [None if not np.isfinite(v) else float(v) for v in bin_means[c]],
+                    "noise_modulation_bin_stderr_lsb2": [None if not np.isfinite(v) else float(v) for v in bin_stderr[c]],
+                    "noise_modulation_bin_counts": [int(v) for v in self._modulation.counts[c]],
                     "error_histogram": {
                         "edges_lsb": [float(v) for v in self.histogram_edges_lsb],
                         "counts": [int(v) for v in self._histogram[c, 1:-1]],
