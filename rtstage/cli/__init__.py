@@ -14,6 +14,7 @@ import sys
 
 from .. import __version__
 from ..errors import RtstageError
+from .examples import add_all_examples
 
 COMMAND_MODULES = (
     "rtstage.cli.render",
@@ -40,6 +41,7 @@ def build_parser():
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMAND_MODULES:
         importlib.import_module(name).register(subparsers)
+    add_all_examples(subparsers)
     return parser
 
 

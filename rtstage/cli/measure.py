@@ -1,23 +1,9 @@
 """``rtstage measure``: analyse a sound file as it is, without requantizing it."""
 
-import argparse
 import json
 import sys
 
 from ..log import log
-
-EXAMPLES = """\
-examples:
-  # a 16-bit transmitter feed recorded off air: bits in use, dither, peaks, loudness
-  rtstage measure air-capture.wav
-
-  # check a finished programme against EBU R 128 and keep the figures and pictures
-  rtstage measure evening-news.flac --loudness-target ebu-r128 --report news.json --plot news-plots
-
-  # the station's own target, -24 LUFS +- 1 LU, true peak at most -2 dBTP; JSON on stdout
-  rtstage measure promo.wav --loudness-target=-24:1:-2 --json
-"""
-
 
 def register(subparsers):
     """Add the ``measure`` subcommand."""
@@ -27,8 +13,6 @@ def register(subparsers):
         description="Analyse a sound file as it is: active and effective bits, bit pattern, whether the low bits look "
                     "dithered, truncated or untouched, sample and true peak, DC, the noise floor in quiet passages, "
                     "and loudness (ITU-R BS.1770-4, EBU Tech 3342). Nothing is requantized. See docs/meters.md.",
-        epilog=EXAMPLES,
-        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("input", help="sound file (WAV, FLAC, AIFF, ...)")
     p.add_argument("--report", metavar="FILE.json", help="write the figures as JSON")

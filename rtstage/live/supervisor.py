@@ -574,7 +574,8 @@ class LiveEngine:
         warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
         warm.report()
         self._meter_shapers = {tuple(shaper.coefs): shaper.id}
-        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name).start()
+        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name,
+                                        loudness_target=getattr(self, "loudness_target", None)).start()
 
     def _meter_shaper_name(self, coefs):
         shaper = self.settings.shaper
