@@ -198,13 +198,21 @@ def draw_ntf(ax, coefs, samplerate, label=None, points=2048):
     return freqs, gain_db
 
 
-def write_ntf_png(shaper_id, coefs, samplerate, path):
-    """The NTF figure of ``rtstage shaper plot --png`` and the report's ``shaper-ntf.png``."""
+def ntf_title(shaper_id, samplerate, design_samplerate_hz=None):
+    """``Noise transfer function of shaper thr9-48k, 48 kHz`` (and the design rate when it differs)."""
+    text = f"Noise transfer function of shaper {shaper_id}, {rate_text(samplerate)}"
+    if design_samplerate_hz and abs(design_samplerate_hz - samplerate) > 0.5:
+        text += f" (designed for {rate_text(design_samplerate_hz)})"
+    return text
+
+
+def write_ntf_png(shaper_id, coefs, samplerate, path, design_samplerate_hz=None):
+    """The NTF figure of ``rtstage shaper plot --png``, the same as the report's ``shaper-ntf.png``."""
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=FIGSIZE)
     try:
         draw_ntf(ax, coefs, samplerate, label=shaper_id)
-        _style(ax, f"Noise transfer function of shaper {shaper_id}, {rate_text(samplerate)}")
+        _style(ax, ntf_title(shaper_id, samplerate, design_samplerate_hz))
         return _save(fig, path)
     finally:
         plt.close(fig)
@@ -244,10 +252,7 @@ def write_plots(report, directory, channel=0):
     if bins:
         paths.append(_modulation(plt, report, ch, dither, scale, coefs, title, directory))
 
-    fig, ax = plt.subplots(figsize=FIGSIZE)
-    draw_ntf(ax, coefs, rate, label=report.get("shaper") or "flat")
-    _style(ax, f"Noise transfer function of shaper {report.get('shaper') or 'flat'}, {rate_text(rate)}")
-    paths.append(_save_close(fig, plt, directory, "shaper-ntf.png"))
+    paths.append(write_ntf_png(report.get("shaper") or "flat", coefs, rate, os.path.join(directory, "shaper-ntf.png")))
     return paths
 
 
