@@ -71,7 +71,7 @@ class TestKWeighting:
         meter = meter_of(x, 48000)
         y = scipy.signal.sosfilt(k_weighting_sos(48000), x, axis=0)
         hops = (y**2).reshape(10, 4800, 2).sum(axis=1).sum(axis=1)
-        np.testing.assert_allclose(meter._hops[:10], hops, rtol=1e-10)
+        np.testing.assert_allclose(meter._hops.values[:10], hops, rtol=1e-10)
 
 
 class TestBlockExact:

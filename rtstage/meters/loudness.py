@@ -60,6 +60,10 @@ RELATIVE_GATE_LU = -10.0
 """Relative gate of the integrated loudness (BS.1770-4)."""
 LRA_RELATIVE_GATE_LU = -20.0
 """Relative gate of the loudness range (EBU Tech 3342)."""
+REFRESH_DIVISOR = 6000
+"""In :meth:`LoudnessMeter.report`, the gated figures are recomputed once ``hops // 6000`` new hops
+have arrived: every 100 ms for the first 10 minutes, then at most 1/6000 of the programme behind
+(a meter read ten times a second all day would otherwise spend a third of a core on them)."""
 LRA_PERCENTILES = (10.0, 95.0)
 """Lower and upper percentiles of the loudness range (EBU Tech 3342)."""
 
@@ -174,15 +178,41 @@ def _lufs(power):
     return LOUDNESS_OFFSET_DB + 10.0 * math.log10(power) if power > 0.0 else None
 
 
-def _gated_mean(powers, relative_lu):
-    """Power mean of ``powers`` after the absolute gate and a relative gate ``relative_lu`` below it."""
-    with np.errstate(divide="ignore"):
-        levels = LOUDNESS_OFFSET_DB + 10.0 * np.log10(powers)
-    above = powers[levels > ABSOLUTE_GATE_LUFS]
-    if above.size == 0:
-        return None, levels, None
-    threshold = LOUDNESS_OFFSET_DB + 10.0 * math.log10(above.mean()) + relative_lu
-    return threshold, levels, (levels > ABSOLUTE_GATE_LUFS) & (levels > threshold)
+def _power_of(lufs):
+    """Weighted mean-square power whose loudness is ``lufs``."""
+    return 10.0 ** ((lufs - LOUDNESS_OFFSET_DB) / 10.0)
+
+
+def _gated(powers, relative_lu):
+    """The relative gate (LUFS) and the mask of ``powers`` passing both gates; (None, None) if none pass the absolute gate.
+
+    Gates are compared in the power domain (the same comparison as in LUFS,
+    without a logarithm per block).
+    """
+    above = powers > _power_of(ABSOLUTE_GATE_LUFS)
+    if not above.any():
+        return None, None
+    threshold = LOUDNESS_OFFSET_DB + 10.0 * math.log10(powers[above].mean()) + relative_lu
+    return threshold, above & (powers > _power_of(threshold))
+
+
+class _Series:
+    """A growing float64 array (amortised appends)."""
+
+    def __init__(self):
+        self._data = np.zeros(1024)
+        self.size = 0
+
+    def extend(self, values):
+        need = self.size + len(values)
+        if need > self._data.size:
+            self._data = np.concatenate((self._data, np.zeros(max(need, 2 * self._data.size) - self._data.size)))
+        self._data[self.size:need] = values
+        self.size = need
+
+    @property
+    def values(self):
+        return self._data[: self.size]
 
 
 class LoudnessMeter:
@@ -227,8 +257,10 @@ class LoudnessMeter:
         self._state = np.zeros((self.nchannels, 4), dtype=np.float64)
         self._acc = np.zeros(self.nchannels, dtype=np.float64)
         self._count = np.zeros(1, dtype=np.int64)
-        self._hops = np.zeros(1024, dtype=np.float64)  # channel-weighted hop power sums
-        self._nhops = 0
+        self._hops = _Series()  # channel-weighted K-weighted power sums, one per 100 ms hop
+        self._momentary = _Series()  # mean power of every 400 ms block (one per hop once 4 hops are in)
+        self._short = _Series()  # mean power of every 3 s block
+        self._cache = None  # (hops, integrated, loudness range) of the last report
         self.frames = 0
 
     def update(self, x):
@@ -239,25 +271,25 @@ class LoudnessMeter:
         out = np.empty((x.shape[0] // self.hop_frames + 1, self.nchannels), dtype=np.float64)
         rows = _kweight_hops(x, x.shape[0], self.sos, self._state, self._acc, self._count, self.hop_frames, out)
         if rows:
-            need = self._nhops + rows
-            if need > self._hops.size:
-                self._hops = np.concatenate((self._hops, np.zeros(max(need, 2 * self._hops.size) - self._hops.size)))
-            self._hops[self._nhops:need] = out[:rows] @ self._weights
-            self._nhops = need
+            first = self._hops.size
+            self._hops.extend(out[:rows] @ self._weights)
+            # Each window's power is the sum of its own hops, formed once when its last hop arrives.
+            for series, nhops in ((self._momentary, MOMENTARY_HOPS), (self._short, SHORT_TERM_HOPS)):
+                start = max(first, nhops - 1)
+                if self._hops.size > start:
+                    tail = self._hops.values[start - nhops + 1:]
+                    windows = np.lib.stride_tricks.sliding_window_view(tail, nhops)
+                    series.extend(windows.sum(axis=1) / (nhops * self.hop_frames))
         self.frames += x.shape[0]
 
     # Readings -----------------------------------------------------------------------------
     def _window_powers(self, nhops):
         """Mean weighted power of every complete window of ``nhops`` hops, one per hop."""
-        if self._nhops < nhops:
-            return np.zeros(0)
-        windows = np.lib.stride_tricks.sliding_window_view(self._hops[: self._nhops], nhops)
-        return windows.sum(axis=1) / (nhops * self.hop_frames)
+        return (self._momentary if nhops == MOMENTARY_HOPS else self._short).values
 
     def _last_window_power(self, nhops):
-        if self._nhops < nhops:
-            return None
-        return float(self._hops[self._nhops - nhops: self._nhops].sum()) / (nhops * self.hop_frames)
+        series = self._window_powers(nhops)
+        return float(series[-1]) if series.size else None
 
     def momentary_lufs(self):
         """Loudness of the last 400 ms, LUFS (None before 400 ms or in silence)."""
@@ -295,7 +327,7 @@ class LoudnessMeter:
            400 ms with 75 % overlap, absolute gate −70 LUFS, relative gate −10 LU.
         """
         powers = self._window_powers(MOMENTARY_HOPS)
-        threshold, _, keep = _gated_mean(powers, RELATIVE_GATE_LU)
+        threshold, keep = _gated(powers, RELATIVE_GATE_LU)
         if threshold is None:
             return {"integrated_lufs": None, "relative_gate_lufs": None, "gated_blocks": 0, "blocks": int(powers.size)}
         return {
@@ -327,30 +359,31 @@ class LoudnessMeter:
         .. [1] EBU Tech 3342 v4, 2016, section 3 and Annex.
         """
         powers = self._window_powers(SHORT_TERM_HOPS)
-        threshold, levels, keep = _gated_mean(powers, LRA_RELATIVE_GATE_LU)
+        threshold, keep = _gated(powers, LRA_RELATIVE_GATE_LU)
         if threshold is None or not keep.any():
             return {"loudness_range_lu": None, "low_lufs": None, "high_lufs": None, "relative_gate_lufs": threshold}
-        values = np.sort(levels[keep])
+        values = powers[keep]
         n = values.size
-        low = float(values[int(round((n - 1) * LRA_PERCENTILES[0] / 100.0))])
-        high = float(values[int(round((n - 1) * LRA_PERCENTILES[1] / 100.0))])
+        ranks = [int(round((n - 1) * p / 100.0)) for p in LRA_PERCENTILES]
+        picked = np.partition(values, ranks)[ranks]  # loudness is monotonic in power: the same ranks
+        low, high = (_lufs(float(p)) for p in picked)
         return {"loudness_range_lu": high - low, "low_lufs": low, "high_lufs": high, "relative_gate_lufs": threshold}
 
     def report(self):
         """Every reading as plain data (docs/meters.md, "Loudness")."""
-        momentary = self.momentary_series()
-        short = self.short_term_series()
-        integrated = self.integrated()
-        lra = self.loudness_range()
-        finite_max = lambda s: float(s[np.isfinite(s)].max()) if np.isfinite(s).any() else None  # noqa: E731
+        size = self._hops.size
+        if self._cache is None or size - self._cache[0] >= max(1, size // REFRESH_DIVISOR):
+            self._cache = (size, self.integrated(), self.loudness_range())
+        _, integrated, lra = self._cache
+        top = lambda s: _lufs(float(s.max())) if s.size else None  # noqa: E731
         return {
             "method": "ITU-R BS.1770-4, EBU Tech 3342",
             "channel_weights": list(self.channel_weights),
             "duration_s": self.frames / self.samplerate,
             "momentary_lufs": self.momentary_lufs(),
             "short_term_lufs": self.short_term_lufs(),
-            "momentary_max_lufs": finite_max(momentary),
-            "short_term_max_lufs": finite_max(short),
+            "momentary_max_lufs": top(self._window_powers(MOMENTARY_HOPS)),
+            "short_term_max_lufs": top(self._window_powers(SHORT_TERM_HOPS)),
             "integrated_lufs": integrated["integrated_lufs"],
             "integrated_relative_gate_lufs": integrated["relative_gate_lufs"],
             "integrated_gated_blocks": integrated["gated_blocks"],
