@@ -120,7 +120,7 @@ def _progress(total_frames, samplerate):
 
 def render_file(
     input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, force=False, observers=(),
-    automation=None, meters=None,
+    automation=None, meters=None, quiet=False,
 ):
     """Requantize ``input_path`` into ``output_path``.
 
@@ -150,6 +150,8 @@ def render_file(
         :meth:`rtstage.meters.MeterBank.for_engine`) whose ``update(vq, words)``
         receives every block with the quantizer input from the kernel's meter
         tap; read its report after the render.
+    quiet : bool
+        No progress bar.
 
     Returns
     -------
@@ -187,7 +189,7 @@ def render_file(
         umask = os.umask(0)
         os.umask(umask)
         os.chmod(tmp_path, 0o666 & ~umask)
-        progress = _progress(infile.frames, infile.samplerate)
+        progress = None if quiet else _progress(infile.frames, infile.samplerate)
         peak = 0.0
         try:
             with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \

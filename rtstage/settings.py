@@ -17,7 +17,7 @@ import numpy as np
 
 from .dither import DITHER_KINDS
 from .errors import RtstageError
-from .shapers import MAX_TAPS, Shaper, get_shaper
+from .shapers import MAX_TAPS, Shaper, fit_shaper_to_rate, get_shaper
 
 MIN_BITS = 2
 MAX_BITS = 24
@@ -98,13 +98,19 @@ class EngineSettings:
     auto_mute: bool = False
     auto_mute_hold_s: float = 0.5
 
-    def resolved(self):
-        """A copy with a concrete seed and a :class:`Shaper` object, validated."""
+    def resolved(self, samplerate=None):
+        """A copy with a concrete seed and a :class:`Shaper` object, validated.
+
+        With ``samplerate``, a shaper asked for by family (``thr9``) becomes
+        the family's design for that rate.
+        """
         s = self
         if s.seed is None:
             s = replace(s, seed=new_seed())
         if not isinstance(s.shaper, Shaper):
             s = replace(s, shaper=get_shaper(s.shaper))
+        if samplerate is not None:
+            s = replace(s, shaper=fit_shaper_to_rate(s.shaper, samplerate))
         s.validate()
         return s
 

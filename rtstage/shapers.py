@@ -26,7 +26,7 @@ References
 import math
 import os
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -58,6 +58,8 @@ class Shaper:
     source: str = ""
     description: str = ""
     path: str = field(default=None, compare=False)
+    family: str = field(default=None, compare=False)
+    """Set when the shaper was asked for by family (``thr9``): the engine picks the member for its rate."""
 
     @property
     def ntaps(self):
@@ -187,8 +189,48 @@ def get_shaper(name):
     presets = preset_shapers()
     if name in presets:
         return presets[name]
-    known = ", ".join(list(BUILTIN_SHAPERS) + list(presets))
+    members = family_members(name, presets)
+    if members:
+        # A family names one design per rate; until the rate is known, the 48 kHz member stands in.
+        rate = 48000.0 if 48000.0 in members else min(members)
+        return replace(members[rate], family=name)
+    families = sorted({_family(sid) for sid in presets} - {None})
+    known = ", ".join(list(BUILTIN_SHAPERS) + list(presets) + [f"{f} (one design per rate)" for f in families])
     raise RtstageError(f"unknown shaper '{name}' (known: {known}; or give a path to a shaper .toml)")
+
+
+RATE_TAGS = {44100.0: "44k1", 48000.0: "48k", 88200.0: "88k2", 96000.0: "96k", 176400.0: "176k4", 192000.0: "192k"}
+"""Suffixes of the shipped per-rate designs (``thr9-44k1``, ``gentle9-48k``)."""
+
+
+def _family(shaper_id):
+    """``thr9`` for ``thr9-48k``; None for an id without a rate suffix."""
+    stem, _, tag = str(shaper_id).rpartition("-")
+    return stem if stem and tag in RATE_TAGS.values() else None
+
+
+def family_members(family, presets=None):
+    """The preset shapers of a family, by design rate: ``{44100.0: thr9-44k1, 48000.0: thr9-48k, ...}``."""
+    presets = preset_shapers() if presets is None else presets
+    found = {}
+    for rate, tag in RATE_TAGS.items():
+        member = presets.get(f"{family}-{tag}")
+        if member is not None and member.design_samplerate_hz and abs(member.design_samplerate_hz - rate) < 0.5:
+            found[rate] = member
+    return found
+
+
+def fit_shaper_to_rate(shaper, samplerate):
+    """The member of ``shaper``'s family designed for ``samplerate``, or ``shaper`` itself.
+
+    Only a shaper asked for by family (``--shaper thr9``, a preset's
+    ``shaper = "gentle9"``) is exchanged; one asked for by its full id is kept
+    as given (a rate warning then says which design fits).
+    """
+    if shaper.family is None or (shaper.design_samplerate_hz and abs(shaper.design_samplerate_hz - samplerate) < 0.5):
+        return shaper
+    member = family_members(shaper.family).get(float(samplerate))
+    return shaper if member is None else replace(member, family=shaper.family)
 
 
 # ----------------------------------------------------------------------------- analysis

@@ -111,8 +111,8 @@ def test_preset_and_override(tmp_path, programme):
     src = str(tmp_path / "in.wav")
     decoded = write(src, x, samplerate, "PCM_24")
     out = str(tmp_path / "out.wav")
-    # master16-44k1 says wannamaker-f9; --shaper overrides it.
-    assert main(["render", src, out, "--preset", "master16-44k1", "--shaper", "flat", "--seed", "2"]) == 0
+    # master16 says thr9 (shaped); --shaper overrides it.
+    assert main(["render", src, out, "--preset", "master16", "--shaper", "flat", "--seed", "2"]) == 0
     want, _ = render_array(decoded, samplerate, EngineSettings(16, "tpdf", "flat", seed=2))
     assert_array_equal(sf.read(out, dtype="int16", always_2d=True)[0], want)
 

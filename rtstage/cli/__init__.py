@@ -14,12 +14,14 @@ import sys
 
 from .. import __version__
 from ..errors import RtstageError
+from .examples import add_all_examples
 
 COMMAND_MODULES = (
     "rtstage.cli.render",
     "rtstage.cli.pipe",
     "rtstage.cli.demo",
     "rtstage.cli.report",
+    "rtstage.cli.measure",
     "rtstage.cli.shaper",
     "rtstage.cli.send",
     "rtstage.cli.run",
@@ -41,6 +43,7 @@ def build_parser():
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMAND_MODULES:
         importlib.import_module(name).register(subparsers)
+    add_all_examples(subparsers)
     return parser
 
 

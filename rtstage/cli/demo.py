@@ -35,8 +35,10 @@ OFFLINE_SETTINGS = (
     ("none", "flat"),
     ("rpdf", "flat"),
     ("tpdf", "flat"),
-    ("tpdf", "lvw-me9"),
+    ("tpdf", "gentle9"),
+    ("tpdf", "thr9"),
 )
+"""Dither and shaper of each row of ``demo --offline``; the shaper families take the rate's own design."""
 
 LIVE_PRESET = "encoder16"
 """The 16-bit preset the live demo starts from (flat TPDF; its dither is overridden per pass)."""
@@ -86,6 +88,8 @@ def run_demo(args):
 
 def run_offline(args):
     """Render the programme with each dither and print a table on stdout."""
+    from ..meters import MeterBank
+
     x = demo.overnight_programme(args.samplerate, args.seconds)
     deep_start = int(0.75 * x.shape[0])
     if args.out:
@@ -93,15 +97,28 @@ def run_offline(args):
         sf.write(os.path.join(args.out, "programme.wav"), x, args.samplerate, subtype="FLOAT")
     print(f"overnight feed, {args.seconds:g} s at {args.samplerate} Hz, requantized to 16 bits (seed {args.seed})")
     print(f"deep tone in the input: {demo.DEEP_TONE_DBFS:.1f} dBFS peak, 1 LSB = {20*np.log10(2.0**-15):.1f} dBFS")
-    print(f"{'dither':<10}{'shaper':<10}{'added noise dBFS':>18}{'deep tone out dBFS':>20}")
+    print("added noise: RMS in dBFS (AES17), channel 1; modulation: spread of its power over the input's position")
+    print("within one step (docs/meters.md); a shaper family takes the design for this rate")
+    head1 = f"{'dither':<8}{'shaper':<16}{'noise, unweighted':>18}{'noise, A':>10}{'noise, 468':>12}{'noise mod':>11}{'deep tone':>11}"
+    head2 = f"{'':<8}{'':<16}{'20 Hz-20 kHz dBFS':>18}{'dBFS':>10}{'dBFS':>12}{'dB':>11}{'out dBFS':>11}"
+    print(head1)
+    print(head2)
     for dither, shaper in OFFLINE_SETTINGS:
-        words, _ = render_array(x, args.samplerate, EngineSettings(16, dither, shaper, seed=args.seed))
+        words, engine = render_array(x, args.samplerate, EngineSettings(16, dither, shaper, seed=args.seed))
+        bank = MeterBank.for_engine(engine)
+        bank.update(x, words)
+        ch = bank.report()["channels"][0]
+        noise = ch["added_noise_dbfs"]
         y = words_to_float(words)
         tone = _deep_tone_dbfs(y, args.samplerate, deep_start)
         tone_text = "erased" if np.mean(tone) < -200 else f"{np.mean(tone):.1f}"
-        print(f"{dither:<10}{shaper:<10}{_level_dbfs(y - x):>18.1f}{tone_text:>20}")
+        mod = ch["noise_modulation_db"]
+        mod_text = "n/a" if mod is None else f"{mod:.1f}"
+        shaper_id = engine.settings.shaper_id
+        print(f"{dither:<8}{shaper_id:<16}{noise['unweighted']:>18.1f}{noise['a_weighted']:>10.1f}{noise['itu468']:>12.1f}"
+              f"{mod_text:>11}{tone_text:>11}")
         if args.out:
-            sf.write(os.path.join(args.out, f"out-{dither}-{shaper}.wav"), words, args.samplerate, subtype="PCM_16")
+            sf.write(os.path.join(args.out, f"out-{dither}-{shaper_id}.wav"), words, args.samplerate, subtype="PCM_16")
     return 0
 
 

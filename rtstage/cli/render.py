@@ -1,6 +1,9 @@
 """``rtstage render``: requantize a sound file (the driver is :mod:`rtstage.render`)."""
 
+import functools
+import json
 import os
+import sys
 
 from ..errors import RtstageError
 from ..log import log
@@ -32,6 +35,11 @@ def register(subparsers):
     p.add_argument("--report", metavar="FILE.json", help="write the meter report (added noise, peaks, noise modulation, bit activity; docs/meters.md)")
     p.add_argument("--plot", metavar="DIR", help="write the meter figures (PNG, needs matplotlib) into DIR; see 'rtstage report'")
     p.add_argument("--automation", metavar="FILE", help="apply timed parameter changes (JSON lines; docs/protocol.md), e.g. a live --automation-log")
+    p.add_argument("--loudness-target", metavar="TARGET",
+                   help="check the output's loudness: ebu-r128, or LUFS[:TOLERANCE_LU[:TRUE_PEAK_DBTP[:LRA_MAX_LU]]], e.g. -24:1:-2")
+    p.add_argument("--quiet", action="store_true", help="no log lines or progress bar on stderr (errors still appear)")
+    p.add_argument("--json", action="store_true",
+                   help="print one JSON summary on stdout: frames, settings, seed, clipped, replaced, warnings")
     p.set_defaults(handler=run_render)
 
 
@@ -50,26 +58,65 @@ def run_render(args):
         if (args.report or args.plot) and any(set(values) & {"bits", "dither", "shaper", "dither_scale"} for _, values in automation):
             raise RtstageError("--report and --plot cannot follow automation that changes bits, dither, dither_scale or shaper "
                                "(the predicted noise would change mid-file); render the sections separately")
+    say = (lambda message: None) if args.quiet else log
+    target = None
+    if args.loudness_target:
+        from ..meters.loudness import parse_target
+
+        target = parse_target(args.loudness_target)
     meters = None
-    if args.report or args.plot:
+    if args.report or args.plot or target is not None:
         from ..meters import MeterBank
 
-        meters = MeterBank.for_engine
+        meters = functools.partial(MeterBank.for_engine, loudness_target=target)
     result = render_file(args.input, args.output, settings, blocksize=args.blocksize, subtype=args.subtype,
-                         force=args.force, automation=automation, meters=meters)
+                         force=args.force, automation=automation, meters=meters, quiet=args.quiet)
     engine = result.engine
-    for message in shaper_warnings(engine.settings, engine.samplerate, result.peak_dbfs):
-        log(message)
+    warnings = shaper_warnings(engine.settings, engine.samplerate, result.peak_dbfs)
+    for message in warnings:
+        say(message)
+    report = result.meter.report() if result.meter is not None else None
     if args.report:
         from ..meters import write_report
 
-        write_report(args.report, result.meter.report())
-        log(f"wrote the meter report {args.report}")
+        write_report(args.report, report)
+        say(f"wrote the meter report {args.report}")
     if args.plot:
         from ..meters.plots import write_plots
 
-        log(f"wrote {', '.join(write_plots(result.meter.report(), args.plot))}")
-    report_counts(engine, args.output)
-    log(f"wrote {args.output}: {engine.frame} frames, {settings.bits} bits, dither {settings.dither}, "
-        f"shaper {settings.shaper_id}, seed {settings.seed}" + ("" if args.seed is not None else " (drawn; pass --seed to reproduce)"))
+        say(f"wrote {', '.join(write_plots(report, args.plot))}")
+    loudness = report["loudness"] if report is not None else None
+    if loudness is not None and target is not None:
+        from ..meters.loudness import loudness_line
+
+        say(loudness_line(loudness))
+        if loudness["target"]["pass"] is False:
+            warnings.append(f"loudness target {target.name} not met: {loudness_line(loudness)}")
+    if not args.quiet:
+        report_counts(engine, args.output)
+    s = engine.settings
+    say(f"wrote {args.output}: {engine.frame} frames, {s.bits} bits, dither {s.dither}, "
+        f"shaper {s.shaper_id}, seed {s.seed}" + ("" if args.seed is not None else " (drawn; pass --seed to reproduce)"))
+    if args.json:
+        summary = {
+            "input": args.input,
+            "output": args.output,
+            "frames": int(engine.frame),
+            "samplerate": int(engine.samplerate),
+            "channels": int(engine.nchannels),
+            "settings": {"bits": s.bits, "dither": s.dither, "shaper": s.shaper_id, "gain_db": s.gain_db,
+                         "dither_scale": s.dither_scale},
+            "seed": int(s.seed),
+            "seed_drawn": args.seed is None,
+            "clipped": int(engine.clipped.sum()),
+            "replaced": int(engine.nonfinite.sum()),
+            "warnings": warnings,
+            "report": args.report,
+            "loudness": None if loudness is None else {
+                k: loudness[k] for k in ("integrated_lufs", "loudness_range_lu", "true_peak_dbtp", "target")},
+        }
+        from ..meters.report import json_ready
+
+        sys.stdout.write(json.dumps(json_ready(summary), allow_nan=False) + "\n")
+        sys.stdout.flush()
     return 0

@@ -43,6 +43,8 @@ def register(subparsers):
     io.add_argument("--status-file", help="write the final status JSON here instead of stderr")
     io.add_argument("--quiet", action="store_true",
                     help="no meter display (by default a live display on a terminal, one status line a second otherwise)")
+    io.add_argument("--loudness-target", metavar="TARGET",
+                    help="show pass/fail of the output's loudness: ebu-r128, or LUFS[:TOLERANCE_LU[:TRUE_PEAK_DBTP]], e.g. -24:1:-2")
     io.add_argument("--settle", type=float, default=1.0,
                     help="start-up seconds whose xruns are reported apart (default 1.0)")
     ctl = run.add_argument_group("control (docs/protocol.md)")
@@ -83,6 +85,10 @@ def run_command(args):
         settle_s=args.settle,
     )
     configure_engine(engine, args)
+    if args.loudness_target:
+        from ..meters.loudness import parse_target
+
+        engine.loudness_target = parse_target(args.loudness_target)  # read when the meter thread starts
     if args.callback == "python":
         log("warning: --callback python runs Python in the audio thread (diagnosis only); expect dropouts")
     for path, what in ((args.automation_log, "automation log"),):

@@ -187,28 +187,7 @@ def run_plot(args):
 
 
 def _draw_png(shaper, freqs, gain, rate, path):
-    try:
-        import matplotlib
+    """The NTF figure, in the style of the report's ``shaper-ntf.png`` (:func:`rtstage.meters.plots.write_ntf_png`)."""
+    from ..meters.plots import write_ntf_png
 
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        raise RtstageError("--png needs matplotlib (install the 'plot' extra); without it use --json or the text output") from None
-    fig, ax = plt.subplots(figsize=(8, 4.5))
-    try:
-        ax.plot(freqs / 1000.0, gain, lw=1.5)
-        ax.axhline(0.0, color="0.5", lw=0.8)
-        if rate / 2 > D.AUDIBLE_LIMIT_HZ:
-            ax.axvline(D.AUDIBLE_LIMIT_HZ / 1000.0, color="0.5", lw=0.8, ls="--")
-        ax.set_xlim(0, rate / 2000.0)
-        ax.set_ylim(max(min(gain), -80.0) - 3.0, max(gain) + 3.0)
-        ax.set_xlabel("frequency (kHz)")
-        ax.set_ylabel("|NTF| (dB)")
-        ax.set_title(f"{shaper.id}: noise transfer function at {rate / 1000:g} kHz")
-        ax.grid(True, alpha=0.3)
-        try:
-            fig.savefig(path, dpi=100)
-        except OSError as exc:
-            raise RtstageError(f"cannot write {path}: {exc.strerror}") from None
-    finally:
-        plt.close(fig)
+    write_ntf_png(shaper.id, shaper.coefs, rate, path, design_samplerate_hz=shaper.design_samplerate_hz)

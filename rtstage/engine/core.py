@@ -61,7 +61,7 @@ class Engine:
         if (isinstance(samplerate, bool) or not isinstance(samplerate, (int, float, np.integer, np.floating))
                 or not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE):
             raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
-        self.settings = settings.resolved()
+        self.settings = settings.resolved(samplerate)
         self.nchannels = int(nchannels)
         self.samplerate = samplerate
         self.container = container_bits(self.settings.bits) if container is None else int(container)
@@ -85,7 +85,7 @@ class Engine:
         The word length may not change the container (a 16-bit engine cannot
         switch to 20 bits).  The seed is kept from the engine's start.
         """
-        settings = replace(settings, seed=self.settings.seed).resolved()
+        settings = replace(settings, seed=self.settings.seed).resolved(self.samplerate)
         if container_bits(settings.bits) > self.container:
             raise RtstageError(f"bits={settings.bits} does not fit this engine's {self.container}-bit output")
         self.settings = settings

@@ -26,6 +26,8 @@ import sys
 import threading
 import time
 
+from ..meters.loudness import loudness_line, verdict_text
+
 BAR_WIDTH = 40
 """Characters of a level bar."""
 BAR_FLOOR_DBFS = -80.0
@@ -144,6 +146,8 @@ def render_text(snap, width=BAR_WIDTH):
                 f"{ch.get('bit_pattern', '')}")
         else:
             lines.append(f"     clip {clipped[c] if c < len(clipped) else 0}")
+    if snap.get("loudness"):
+        lines.append("     " + loudness_line(snap["loudness"]))
     return "\n".join(lines)
 
 
@@ -167,6 +171,10 @@ def status_line(snap):
         if c < len(snap.get("auto_muted") or []) and snap["auto_muted"][c]:
             text += " MUTED(silence)"
         parts.append(text)
+    loud = snap.get("loudness")
+    if loud:
+        i = loud.get("integrated_lufs")
+        parts.append(f"I {'-' if i is None else f'{i:.1f}'} LUFS" + (f" {verdict_text(loud['target'])}" if loud.get("target") else ""))
     if "cpu_load" in snap:
         parts.append(f"cpu {100.0 * (snap.get('cpu_load') or 0.0):.1f}%")
     if "xruns" in snap:

@@ -95,9 +95,12 @@ class MeterThread:
         Frames per bank update (see the module notes).
     report_hz : float
         Snapshots per second.
+    loudness_target : rtstage.meters.loudness.LoudnessTarget or None
+        Delivery target the snapshots' ``loudness`` section is checked against.
     """
 
-    def __init__(self, block, samplerate, shaper_name=None, chunk_frames=CHUNK_FRAMES, report_hz=DEFAULT_REPORT_HZ):
+    def __init__(self, block, samplerate, shaper_name=None, chunk_frames=CHUNK_FRAMES, report_hz=DEFAULT_REPORT_HZ,
+                 loudness_target=None):
         if block.ctl[S.C_METER_ON] == 0:
             raise ValueError("the shared block has no meter ring")
         self.block = block
@@ -105,6 +108,7 @@ class MeterThread:
         self.shaper_name = shaper_name
         self.chunk_frames = int(chunk_frames)
         self.report_interval_s = 1.0 / float(report_hz)
+        self.loudness_target = loudness_target
         nch = block.nchannels
         self._chunk_x = np.zeros((self.chunk_frames, nch), dtype=np.float64)
         self._chunk_w = np.zeros((self.chunk_frames, nch), dtype=block.out_dtype)
@@ -174,8 +178,10 @@ class MeterThread:
     def _start_bank(self, key, frame):
         bits, dither_id, dither_scale, coefs, out_shift = key
         name = self.shaper_name(coefs) if self.shaper_name is not None else None
+        # The programme's loudness carries on across setting changes (the noise figures restart).
         self._bank = MeterBank(self.block.nchannels, self.samplerate, bits, coefs, dither_id, dither_scale, out_shift,
-                               shaper_id=name)
+                               shaper_id=name, loudness_meter=self._bank.loudness_meter if self._bank else None,
+                               loudness_target=self.loudness_target)
         self._bank_key = key
         self._bank_from = int(frame)
 

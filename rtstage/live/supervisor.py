@@ -174,7 +174,7 @@ class LiveEngine:
         self.channels = int(self.channels or DEFAULT_CHANNELS)
         if src is not None and src.generated:
             check_source(src, self.samplerate)
-        self.settings = self.settings.resolved()
+        self.settings = self.settings.resolved(self.samplerate)
         self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
         ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path else 0
         src_frames = 0 if data is None else data.shape[0]
@@ -491,7 +491,7 @@ class LiveEngine:
         int
             Sequence number to pass to :meth:`wait_applied`.
         """
-        settings = replace(settings, seed=self.settings.seed).resolved()
+        settings = replace(settings, seed=self.settings.seed).resolved(self.samplerate)
         if (16 if container_bits(settings.bits) == 16 else 32) != self.out_bits:
             raise RtstageError(f"bits={settings.bits} does not fit this stream's {self.out_bits}-bit output")
         out_shift = (16 if self.out_bits == 16 else 32) - settings.bits
@@ -577,7 +577,8 @@ class LiveEngine:
         warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
         warm.report()
         self._meter_shapers = {tuple(shaper.coefs): shaper.id}
-        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name).start()
+        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name,
+                                        loudness_target=getattr(self, "loudness_target", None)).start()
 
     def _meter_shaper_name(self, coefs):
         shaper = self.settings.shaper

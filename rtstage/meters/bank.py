@@ -28,6 +28,7 @@ import numpy as np
 from ..dither import DITHER_KINDS
 from ..errors import RtstageError
 from .bits import BitActivity
+from .loudness import LoudnessMeter, loudness_report
 from .modulation import DEFAULT_MIN_SAMPLES, DEFAULT_NBINS, NoiseModulation
 from .noise import UNWEIGHTED_BAND_HZ, amplitude_to_dbfs, power_to_dbfs, predicted_psd, reading_powers
 from .report import REPORT_VERSION
@@ -78,6 +79,10 @@ class MeterBank:
         Welch segment length; None picks one giving at most 6 Hz resolution.
     modulation_bins, modulation_min_samples : int
         Noise-modulation estimator settings (see :mod:`rtstage.meters.modulation`).
+    loudness_target : rtstage.meters.loudness.LoudnessTarget or None
+        Delivery target the report's ``loudness`` section is checked against.
+    loudness_meter : rtstage.meters.loudness.LoudnessMeter or None
+        A meter to continue (its programme carries on); None starts one.
     """
 
     def __init__(
@@ -93,6 +98,8 @@ class MeterBank:
         segment_frames=None,
         modulation_bins=DEFAULT_NBINS,
         modulation_min_samples=DEFAULT_MIN_SAMPLES,
+        loudness_target=None,
+        loudness_meter=None,
     ):
         if dither_id not in DITHER_KINDS:
             raise RtstageError(f"unknown dither '{dither_id}' (known: {', '.join(DITHER_KINDS)})")
@@ -121,6 +128,9 @@ class MeterBank:
         self._nonfinite = np.zeros(self.nchannels, dtype=np.int64)
         self._engine_counts = None
         self.frames = 0
+        # Programme loudness of the output; a meter handed over continues its programme.
+        self.loudness_meter = loudness_meter or LoudnessMeter(self.nchannels, self.samplerate)
+        self.loudness_target = loudness_target
 
         # Headroom the shaped error needs (the same authority the engine's warnings use), and
         # a histogram of the added error over the range that bound allows.
@@ -211,7 +221,9 @@ class MeterBank:
                 self._histogram[c] += np.bincount(idx[:, c], minlength=HISTOGRAM_BINS + 2)
         self._modulation.update(v, e, finite & ~at_rail)
         self._in_peaks.update(x)
-        self._out_peaks.update(q * self._step)
+        y = q * self._step
+        self._out_peaks.update(y)
+        self.loudness_meter.update(y)
         self._bits.update(words)
         self.frames += x.shape[0]
 
@@ -255,6 +267,7 @@ class MeterBank:
         pattern = self._bits.pattern()
         clipped, nonfinite = self._engine_counts if self._engine_counts is not None else (self._clipped, self._nonfinite)
         bin_means = self._modulation.bin_means_lsb2()
+        bin_stderr = self._modulation.bin_stderr_lsb2()
         limit = self.peak_limit_dbfs if math.isfinite(self.peak_limit_dbfs) else None
 
         channels = []
@@ -278,6 +291,8 @@ class MeterBank:
                     "bit_pattern": pattern[c],
                     "headroom_exceeded": _exceeds(self.frames, amplitude_to_dbfs(in_sample[c]), limit),
                     "noise_modulation_bins_lsb2": [None if not np.isfinite(v) else float(v) for v in bin_means[c]],
+                    "noise_modulation_bin_stderr_lsb2": [None if not np.isfinite(v) else float(v) for v in bin_stderr[c]],
+                    "noise_modulation_bin_counts": [int(v) for v in self._modulation.counts[c]],
                     "error_histogram": {
                         "edges_lsb": [float(v) for v in self.histogram_edges_lsb],
                         "counts": [int(v) for v in self._histogram[c, 1:-1]],
@@ -315,5 +330,6 @@ class MeterBank:
             "peak_limit_dbfs": limit,
             "error_spectrum_bands_hz": [float(f) for f in self.band_centres_hz],
             "predicted_spectrum_dbfs": [power_to_dbfs(p) if n >= 1 else None for p, n in zip(self._predicted_bands, self._band_bins)],
+            "loudness": loudness_report(self.loudness_meter, out_true, self.loudness_target),
             "channels": channels,
         }

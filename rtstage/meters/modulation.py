@@ -45,7 +45,7 @@ MAX_READING_DB = 200.0
 
 
 @njit(nogil=True, cache=True)
-def _bin_update(v_lsb, e_lsb, valid, nframes, counts, sums):
+def _bin_update(v_lsb, e_lsb, valid, nframes, counts, sums, sums4):
     nch = counts.shape[0]
     nbins = counts.shape[1]
     for n in range(nframes):
@@ -57,7 +57,9 @@ def _bin_update(v_lsb, e_lsb, valid, nframes, counts, sums):
                     j = nbins - 1
                 e = e_lsb[n, c]
                 counts[c, j] += 1
-                sums[c, j] += e * e
+                e2 = e * e
+                sums[c, j] += e2
+                sums4[c, j] += e2 * e2
 
 
 class NoiseModulation:
@@ -79,6 +81,7 @@ class NoiseModulation:
         self.min_samples = int(min_samples)
         self.counts = np.zeros((self.nchannels, self.nbins), dtype=np.int64)
         self.sums = np.zeros((self.nchannels, self.nbins), dtype=np.float64)
+        self.sums4 = np.zeros((self.nchannels, self.nbins), dtype=np.float64)
         empty = np.zeros((0, self.nchannels))
         self.update(empty, empty, np.zeros((0, self.nchannels), dtype=np.bool_))
 
@@ -91,6 +94,7 @@ class NoiseModulation:
             v_lsb.shape[0],
             self.counts,
             self.sums,
+            self.sums4,
         )
 
     def bin_means_lsb2(self):
@@ -98,6 +102,15 @@ class NoiseModulation:
         with np.errstate(invalid="ignore", divide="ignore"):
             means = self.sums / self.counts
         return np.where(self.counts >= self.min_samples, means, np.nan)
+
+    def bin_stderr_lsb2(self):
+        """Standard error of each bin's mean e², LSB² (sample variance of e² over n); NaN below ``min_samples``."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            n = self.counts.astype(np.float64)
+            mean = self.sums / n
+            var = np.maximum(self.sums4 / n - mean * mean, 0.0) * n / np.maximum(n - 1.0, 1.0)
+            se = np.sqrt(var / n)
+        return np.where(self.counts >= self.min_samples, se, np.nan)
 
     def bins_used(self):
         """Number of bins per channel holding at least ``min_samples`` samples."""

@@ -1,0 +1,50 @@
+"""Every command's --help ends with worked examples, and every example parses with the real parser."""
+
+import argparse
+import re
+import shlex
+
+import pytest
+
+from rtstage.cli import build_parser
+from rtstage.cli.examples import EXAMPLES
+
+
+def _commands():
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    out = []
+    for name, p in sub.choices.items():
+        out.append((name, p))
+        for action in p._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                out.extend((f"{name} {s}", sp) for s, sp in action.choices.items())
+    return out
+
+
+@pytest.mark.parametrize("name, parser", _commands(), ids=lambda v: v if isinstance(v, str) else "")
+def test_help_ends_with_two_or_three_examples(name, parser):
+    text = parser.format_help()
+    tail = text[text.index("examples:"):]
+    commands = [line for line in tail.splitlines() if "rtstage " in line and not line.strip().startswith("#")]
+    assert 2 <= len(commands) <= 3, name
+    assert text.rstrip().endswith(EXAMPLES[name].rstrip().splitlines()[-1].strip())
+
+
+def _example_argvs():
+    for name, text in EXAMPLES.items():
+        joined = re.sub(r"\\\n\s*", " ", text)
+        for line in joined.splitlines():
+            line = line.strip()
+            if not line or line.startswith("#"):
+                continue
+            # Keep the rtstage part of a shell pipeline or redirection.
+            part = line[line.index("rtstage "):]
+            part = re.split(r"\s[|<>]\s", part)[0]
+            yield name, shlex.split(part)[1:]
+
+
+@pytest.mark.parametrize("name, argv", list(_example_argvs()))
+def test_every_example_parses(name, argv):
+    args = build_parser().parse_args(argv)
+    assert args.command == name.split()[0]
