@@ -223,6 +223,9 @@ class LiveTarget(ControlTarget):
 
     # -- housekeeping -------------------------------------------------------------------------
     def _run(self):
+        from ..live.realtime import enter_control_thread
+
+        self.engine.control_thread_info = enter_control_thread()  # SCHED_FIFO below the audio thread, if permitted
         while not self._stop.is_set():
             if self._inflight is not None:
                 self._check_applied()

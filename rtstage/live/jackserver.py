@@ -31,6 +31,16 @@ def jackd_path():
     return shutil.which("jackd")
 
 
+_NOTICE = []
+
+
+def _notice_once():
+    if not _NOTICE:
+        _NOTICE.append(1)
+        print("rtstage: notice: SCHED_FIFO is not permitted here; JACK dummy servers run --no-realtime",
+              file=sys.stderr, flush=True)
+
+
 class JackDummyServer:
     """Start and stop ``jackd -d dummy`` under a private name.
 
@@ -44,18 +54,26 @@ class JackDummyServer:
         Capture and playback ports of the dummy device.
     name : str or None
         Server name; None makes a unique one.
-    realtime : bool
-        Ask for realtime scheduling (needs the privilege); default off.
+    realtime : bool or None
+        Run ``--realtime`` (SCHED_FIFO); None (the default) asks for it when
+        this process may use SCHED_FIFO (:func:`rtstage.live.realtime.realtime_permitted`)
+        and otherwise runs ``--no-realtime`` with a one-line notice.
     ready_timeout_s : float
         How long :meth:`start` waits for the server to accept clients.
     """
 
-    def __init__(self, samplerate=48000, period_frames=64, channels=2, name=None, realtime=False, ready_timeout_s=15.0):
+    def __init__(self, samplerate=48000, period_frames=64, channels=2, name=None, realtime=None, ready_timeout_s=15.0):
         self.samplerate = int(samplerate)
         self.period_frames = int(period_frames)
         self.channels = int(channels)
         self.name = name or f"rtstage-{os.getpid()}-{next(_COUNTER)}"
-        self.realtime = realtime
+        if realtime is None:
+            from .realtime import realtime_permitted
+
+            realtime = realtime_permitted()
+            if not realtime:
+                _notice_once()
+        self.realtime = bool(realtime)
         self.ready_timeout_s = ready_timeout_s
         self.process = None
         self.log_path = os.path.join(tempfile.gettempdir(), f"{self.name}.jackd.log")

@@ -54,6 +54,7 @@ from ..log import log
 from ..errors import RtstageError
 from . import shared as S
 from .sources import check_source, gen_params, load_source_file, parse_source
+from .realtime import engine_realtime, start_notice
 from .tap import TapWriter
 
 DEFAULT_BLOCKSIZE = 256
@@ -293,6 +294,7 @@ class LiveEngine:
             raise RtstageError(f"cannot open the audio stream on '{self.output_name}' ({self.hostapi_name}): "
                                f"{reply['error']}")
         self.worker = proc
+        self._worker_reply = reply  # carries the worker's realtime report (rtstage.live.realtime)
         now = time.monotonic()
         self._windows.append({"start": now, "at_start": self._flags(), "at_settle": None})
         self._last_progress = now
@@ -324,6 +326,7 @@ class LiveEngine:
         log(f"running: {self.output_name} ({self.hostapi_name}), {self.samplerate} Hz, {self.channels} ch, "
             f"{self.blocksize}-frame blocks, {self.settings.bits}-bit {self.settings.dither} dither, "
             f"shaper {self.settings.shaper_id}, seed {self.settings.seed}")
+        start_notice(self)
         gc.collect()
         gc.freeze()
         return self
@@ -554,6 +557,7 @@ class LiveEngine:
         "auto_muted": (b.kernel.counts[:, K.CNT_AM_MUTED] != 0).tolist() if b else [],
         "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
             "settings_applied": list(self.applied_log),
+            "realtime": engine_realtime(self),
         }
         return result
 

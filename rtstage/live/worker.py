@@ -122,6 +122,9 @@ def stream(args):
         cb.ctypes(ctypes.c_void_p(inp.ctypes.data), ctypes.c_void_p(out.ctypes.data), max_frames, None, 0,
                   ctypes.c_void_p(scratch.address))
 
+    from .realtime import prepare_stream_process
+
+    rt_info = prepare_stream_process(memory, out, inp)  # mlockall, then every page of the shared block resident
     out_index = find_by_name(args.output_name, args.hostapi_name, "output")
     in_index = find_by_name(args.input_name, args.hostapi_name, "input") if args.input_name else None
     if out_index is None or (args.input_name and in_index is None):
@@ -142,7 +145,7 @@ def stream(args):
     gc.collect()
     gc.freeze()
     block.ctl[S.C_WORKER_PID] = os.getpid()
-    _reply({"ok": True, "pid": os.getpid(), "latency_s": s.latency})
+    _reply({"ok": True, "pid": os.getpid(), "latency_s": s.latency, "realtime": rt_info})
     while True:
         ready, _, _ = select.select([sys.stdin], [], [], 0.02)
         if ready:
