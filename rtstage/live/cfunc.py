@@ -33,6 +33,7 @@ from numba import carray, njit, types
 
 from .. import kernel as K
 from . import shared as S
+from . import timing
 from ._ptr import address_to_voidptr, voidptr_to_address
 from .sources import fill_generated
 
@@ -191,11 +192,21 @@ def callback_core(in_addr, out_addr, frames, status_flags, table_addr):
 
 
 def _callback(input_ptr, output_ptr, frames, time_info, status_flags, user_data):
-    return callback_core(voidptr_to_address(input_ptr), voidptr_to_address(output_ptr), frames, status_flags,
-                         voidptr_to_address(user_data))
+    # Around the core: the frame-time check and the execution time (rtstage.live.timing).
+    table_addr = voidptr_to_address(user_data)
+    table = carray(address_to_voidptr(table_addr), (S.T_LEN,), np.int64)
+    ctl = _view(table, S.T_CTL, (S.C_LEN,), np.int64)
+    clock = _view(table, S.T_CLOCK, (K.CLK_LEN,), np.int64)
+    t0_ns = timing.cycle_begin(table[S.T_CTL], voidptr_to_address(time_info), ctl[S.C_FRAMES], clock[K.CLK_FRAME],
+                               ctl[S.C_RING_HEAD])
+    result = callback_core(voidptr_to_address(input_ptr), voidptr_to_address(output_ptr), frames, status_flags,
+                           table_addr)
+    timing.cycle_end(table[S.T_CTL], t0_ns)
+    return result
 
 
-_DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/shared.py", "live/sources.py", "live/cfunc.py")
+_DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/shared.py", "live/sources.py", "live/cfunc.py",
+            "live/timing.py")
 
 
 def source_digest():

@@ -56,6 +56,7 @@ from . import shared as S
 from .sources import check_source, gen_params, load_source_file, parse_source
 from .realtime import engine_realtime, start_notice
 from .tap import TapWriter
+from .timing import check_port, port_status
 
 DEFAULT_BLOCKSIZE = 256
 """Default frames per callback (a power of two)."""
@@ -349,6 +350,7 @@ class LiveEngine:
         window = self._windows[-1] if self._windows else None
         if window is not None and window["at_settle"] is None and now - window["start"] >= self.settle_s:
             window["at_settle"] = self._flags()
+        self._port_events = check_port(self, getattr(self, "_port_events", 0))  # missing/repeated periods
         if self.finished:
             return False
         stream_alive = self.worker is not None and self.worker.poll() is None
@@ -462,6 +464,7 @@ class LiveEngine:
             self.worker = None
         if self.state == "running":
             self._log_applied()
+            self._port_events = check_port(self, getattr(self, "_port_events", 0))
         self.state = "stopped"
         tap_summary = self.tap.close() if self.tap is not None else None
         self.tap = None
@@ -558,6 +561,7 @@ class LiveEngine:
         "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
             "settings_applied": list(self.applied_log),
             "realtime": engine_realtime(self),
+            "port": port_status(b.ctl, self.samplerate, self.blocksize) if b else {},
         }
         return result
 

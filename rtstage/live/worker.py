@@ -130,6 +130,10 @@ def stream(args):
     if out_index is None or (args.input_name and in_index is None):
         _reply({"ok": False, "error": f"device '{args.output_name}' ({args.hostapi_name}) is not available"})
         os._exit(EXIT_OPEN_FAILED)
+    from .timing import JackFrameClock
+
+    frame_clock = JackFrameClock(enabled="JACK" in args.hostapi_name)  # the per-cycle port check (JACK only)
+    frame_clock.install(block.ctl)
     try:
         s = open_stream(block, args.samplerate, args.blocksize, out_index, in_index, args.latency, args.callback)
         s.start()
@@ -163,6 +167,7 @@ def stream(args):
                 break
             os._exit(EXIT_STREAM_LOST)  # the audio system stopped the stream: never touch it again
     close_stream(s, abort=False)
+    frame_clock.close(block.ctl)
     sys.stdout.flush()
     os._exit(EXIT_OK)
 
