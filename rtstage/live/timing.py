@@ -101,7 +101,14 @@ C_JACK_CLIENT = C_BASE + 17
 """The worker's own (never activated) JACK client handle those calls take."""
 C_CYCLE0 = C_BASE + 18
 C_FRAMES0 = C_BASE + 19
-C_END = C_BASE + 20
+C_SLIP_PEND = C_BASE + 20
+"""1 while a new offset waits for the next callback: it holds (periods lost) or comes back (a late cycle)."""
+C_SLIP_CAND = C_BASE + 21
+C_SLIP_CAND_FRAME = C_BASE + 22
+C_SLIP_CAND_TAP = C_BASE + 23
+C_LATE_CYCLES = C_BASE + 24
+"""Callbacks that ran in the cycle after their own and were caught up by the next one (nothing lost)."""
+C_END = C_BASE + 26
 
 REF_CALLBACKS = 16
 """Callbacks after a stream start that set the reference and are not timed."""
@@ -150,17 +157,30 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
         if n < REF_CALLBACKS:
             ctl[C_TIME_REF] = d
             ctl[C_SLIP_NET] = 0
+            ctl[C_SLIP_PEND] = 0
         else:
             if since > ctl[C_PHASE_MAX]:
                 ctl[C_PHASE_MAX] = since
             diff = d - ctl[C_TIME_REF]
             k = diff // period if diff >= 0 else -((-diff + period - 1) // period)
-            if k != ctl[C_SLIP_NET]:
+            if k == ctl[C_SLIP_NET]:
+                if ctl[C_SLIP_PEND] != 0:
+                    # The offset came back: the previous callback ran in the next cycle and this one caught up.
+                    ctl[C_LATE_CYCLES] += 1
+                    ctl[C_SLIP_PEND] = 0
+            elif ctl[C_SLIP_PEND] == 0 or ctl[C_SLIP_CAND] != k:
+                ctl[C_SLIP_CAND] = k
+                ctl[C_SLIP_PEND] = 1
+                ctl[C_SLIP_CAND_FRAME] = engine_frame
+                ctl[C_SLIP_CAND_TAP] = tap_head
+            else:
+                # The offset held for a second callback: periods were lost (or served twice) for good.
                 delta = k - ctl[C_SLIP_NET]
                 ctl[C_SLIP_NET] = k
+                ctl[C_SLIP_PEND] = 0
                 ctl[C_SLIP_DELTA] = delta
-                ctl[C_SLIP_FRAME] = engine_frame
-                ctl[C_SLIP_TAP] = tap_head
+                ctl[C_SLIP_FRAME] = ctl[C_SLIP_CAND_FRAME]
+                ctl[C_SLIP_TAP] = ctl[C_SLIP_CAND_TAP]
                 ctl[C_SLIP_TOTAL] += delta if delta > 0 else -delta
                 ctl[C_SLIP_EVENTS] += 1
         ctl[C_TIME_N] = n + 1
@@ -226,6 +246,7 @@ class JackFrameClock:
         """Write the period, the function addresses and the handle into ``ctl``; restart the check."""
         ctl[C_TIME_N] = 0
         ctl[C_SLIP_NET] = 0
+        ctl[C_SLIP_PEND] = 0
         if self._client is None:
             ctl[C_HOST_PERIOD] = 0
             ctl[C_JACK_LFT] = 0
@@ -256,6 +277,7 @@ def port_status(ctl, samplerate, blocksize):
         "slip_events": int(ctl[C_SLIP_EVENTS]),
         "periods_off": int(ctl[C_SLIP_NET]),
         "periods_missing_or_repeated": int(ctl[C_SLIP_TOTAL]),
+        "late_cycles": int(ctl[C_LATE_CYCLES]),
         "late_start_max_frames": int(ctl[C_PHASE_MAX]),
         "callback_max_us": round(max_ns / 1e3, 3),
         "callback_last_us": round(int(ctl[C_CB_NS_LAST]) / 1e3, 3),
@@ -274,10 +296,13 @@ def check_port(engine, seen):
     if events == seen:
         return seen
     delta = int(ctl[C_SLIP_DELTA])
-    what = "missing" if delta > 0 else "repeated"
-    gap = {"tap_frame": int(ctl[C_SLIP_TAP]), "engine_frame": int(ctl[C_SLIP_FRAME]), "gap_s": 0.0,
-           "reason": f"port: {abs(delta)} server period(s) of {int(ctl[C_HOST_PERIOD])} frames {what} "
-                     "(server cycles against frames delivered)",
+    period = int(ctl[C_HOST_PERIOD])
+    if delta > 0:
+        what = f"{delta} server cycle(s) of {period} frames passed without this stream"
+    else:
+        what = f"{-delta} server cycle(s) of {period} frames served twice"
+    gap = {"tap_frame": int(ctl[C_SLIP_TAP]), "engine_frame": int(ctl[C_SLIP_FRAME]), "gap_s": round(delta * period / float(engine.samplerate), 6),
+           "reason": f"port: {what} (server frame counter against frames delivered)",
            "periods": delta, "events": events - seen}
     engine.gaps.append(gap)
     if engine.tap is not None:

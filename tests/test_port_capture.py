@@ -1,0 +1,145 @@
+"""What rtstage's JACK ports deliver, recorded by an independent client, against ``rtstage render``.
+
+The recorder is ``tools/port_capture.py``: a separate process built on the
+``JACK-Client`` package (cffi; real JACK ports), sharing no code with the live
+engine.  It records rtstage's output ports on a realtime dummy server; the
+recorded float32 samples are turned back into words (JACK carries float32, and
+PortAudio's int16 -> float32 conversion is w / 2^15, exact for every 16-bit
+word; w / 2^31 for a left-justified 24-bit word is exact too, since a 24-bit
+word fits float32's 24-bit significand) and compared word for word with
+``rtstage render`` of the same file and settings.
+
+What is asserted strictly:
+
+* the tap equals the render bit for bit and has no dropped frames;
+* the capture, aligned on its first nonzero frame, equals the render word for
+  word everywhere outside the stretches it lists as gaps;
+* every gap in the capture that the capture did not cause itself (a cycle it
+  missed shows in its own ``jack_last_frame_time`` record) is reported by
+  rtstage, in its status and in the tap's gap record, at the same sample
+  index; and every period rtstage reports as lost shows in the capture.  A
+  machine-wide stall hits both clients in the same cycles: it is then either
+  the capture's own miss (excluded) or rtstage's reported loss (required to be
+  reported) -- never a silent loss.
+"""
+
+import json
+import os
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+import soundfile as sf
+from numpy.testing import assert_array_equal
+
+from rtstage.live.sources import generate
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+sys.path.insert(0, os.path.join(ROOT, "tools"))
+
+from port_capture import compare_channels, cycle_events, words_from_float  # noqa: E402
+
+SR = 48000
+
+
+def _render(src, out, bits, shaper, seed):
+    subtype = "PCM_16" if bits <= 16 else "PCM_24"
+    subprocess.run([sys.executable, "-m", "rtstage", "render", src, out, "--bits", str(bits), "--dither", "tpdf",
+                    "--shaper", shaper, "--seed", str(seed), "--subtype", subtype], cwd=ROOT, check=True,
+                   capture_output=True)
+    words, _ = sf.read(out, dtype="int16" if bits <= 16 else "int32", always_2d=True)
+    return words.astype(np.int64) if bits <= 16 else (words.astype(np.int64) >> 8)
+
+
+def _capture_run(server, tmp_path, bits, shaper, seed, blocksize, seconds_src, extra=()):
+    x = generate("noise:level_dbfs=-12,seed=11", SR, 2, 0, int(seconds_src * SR))
+    x[:, 1] *= 0.5
+    src = str(tmp_path / "src.wav")
+    sf.write(src, x, SR, subtype="DOUBLE")
+    reference = _render(src, str(tmp_path / "render.wav"), bits, shaper, seed)
+    env = server.client_env()
+    cap_path = str(tmp_path / "capture.npz")
+    cap = subprocess.Popen([sys.executable, os.path.join(ROOT, "tools", "port_capture.py"), "--ports",
+                            "PortAudio:out_0,PortAudio:out_1", "--seconds", str(seconds_src + 30), "--out", cap_path],
+                           env=env, cwd=ROOT, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+    try:
+        assert json.loads(cap.stdout.readline())["ready"]
+        tap = str(tmp_path / "tap.wav")
+        status_path = str(tmp_path / "status.json")
+        run = subprocess.run([sys.executable, "-m", "rtstage", "run", "--source", src, "--bits", str(bits), "--dither",
+                              "tpdf", "--shaper", shaper, "--seed", str(seed), "--blocksize", str(blocksize), "--tap",
+                              tap, "--status-file", status_path, "--quiet", *extra],
+                             env=env, cwd=ROOT, capture_output=True, text=True, timeout=120)
+        assert run.returncode == 0, run.stderr
+        cap.stdin.write("stop\n")
+        cap.stdin.flush()
+        summary = json.loads(cap.stdout.readline())
+        cap.wait(30)
+    finally:
+        if cap.poll() is None:
+            cap.kill()
+            cap.wait()
+    status = json.load(open(status_path))
+    data = np.load(cap_path)
+    return reference, status, tap, summary, data, run.stderr
+
+
+@pytest.mark.parametrize("bits,shaper,seed,blocksize", [
+    (16, "wannamaker-f9", 20261202, 64),
+    (24, "lvw-e5", 7, 256),
+])
+def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blocksize):
+    # The fixture's server runs --realtime where SCHED_FIFO is permitted (root in CI).
+    reference, status, tap, summary, data, stderr = _capture_run(jack_server, tmp_path, bits, shaper, seed, blocksize, 4.0)
+    container = 16 if bits <= 16 else 24
+
+    # Tap: bit-exact against rtstage render (the offline path; the same kernel, block-exact by design).
+    tap_words, _ = sf.read(tap, dtype="int16" if bits <= 16 else "int32", always_2d=True)
+    tap_words = tap_words.astype(np.int64) if bits <= 16 else tap_words.astype(np.int64) >> 8
+    assert status["tap_dropped_frames"] == 0
+    assert_array_equal(tap_words, reference)
+
+    # Port: JACK float32 samples back to words (exact on the container's grid, else ValueError).
+    words = words_from_float(data["audio"], container)
+    if bits > 16:
+        assert not np.any(words & ((1 << (24 - bits)) - 1)), "words below the word length are not zero"
+    period = int(data["period"])
+    per_channel = compare_channels(words, reference)
+    offsets = {c["offset"] for c in per_channel}
+    assert None not in offsets and len(offsets) == 1 and all(c["mismatch"] is None for c in per_channel), per_channel
+    offset = offsets.pop()  # engine sample index = capture frame + offset
+    # Everything the reference holds after the alignment point reached the capture.
+    for c in per_channel:
+        assert c["matched_frames"] >= reference.shape[0] - max(offset, 0) - period * (len(c["gaps"]) + 2), c
+
+    # The capture's own record: its late cycles (excluded: its reads may be torn) and server frame jumps (a stall
+    # of the server, seen by every client in the same cycle).
+    jumps, late = cycle_events(data["cycle_start"], data["cycle_pos"], period)
+    window = blocksize + 2 * period
+    first, last = -offset, reference.shape[0] - offset  # capture frames while rtstage's source played
+    content_gaps = [g for c in per_channel for g in c["gaps"]]
+    port_gaps = [g for g in status["gaps"] if g["reason"].startswith("port:")]
+    reported_at = [g["engine_frame"] for g in port_gaps]
+
+    def near(frame, frames):
+        return any(abs(frame - f) <= window for f in frames)
+
+    # (a) No silent loss: every stretch missing or repeated in what the port delivered is either the capture's
+    # own late cycle or reported by rtstage at the same sample index.
+    for g in content_gaps:
+        assert near(g["captured_frame"], late) or near(g["reference_frame"], reported_at), (g, port_gaps, late)
+    # (b) Every server cycle that passed without the stream, as the capture saw it, is reported by rtstage.
+    for pos, n in jumps:
+        if first + window < pos < last - window:
+            assert near(pos + offset, reported_at), ((pos, n), port_gaps)
+    # (c) Every loss rtstage reports is seen by the independent client: a server jump or a content gap.
+    jump_frames = [pos + offset for pos, _ in jumps]
+    for f in reported_at:
+        assert near(f, jump_frames) or near(f, [g["reference_frame"] for g in content_gaps]), (f, jumps, content_gaps)
+    # The tap's gap record carries the same entries as the status.
+    sidecar = json.load(open(tap + ".gaps.json"))
+    assert [g["engine_frame"] for g in sidecar["gaps"] if g["reason"].startswith("port:")] == reported_at
+    print(json.dumps({"capture": summary, "jumps": jumps, "capture_late": len(late), "content_gaps": content_gaps,
+                      "port_gaps": port_gaps, "port": status["port"]}))
