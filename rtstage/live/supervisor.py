@@ -561,7 +561,7 @@ class LiveEngine:
         "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
             "settings_applied": list(self.applied_log),
             "realtime": engine_realtime(self),
-            "port": port_status(b.ctl, self.samplerate, self.blocksize) if b else {},
+            "port": port_status(b.ctl, self.samplerate, self.blocksize, getattr(self, "port_late", None)) if b else {},
         }
         return result
 

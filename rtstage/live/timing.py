@@ -108,7 +108,15 @@ C_SLIP_CAND_FRAME = C_BASE + 22
 C_SLIP_CAND_TAP = C_BASE + 23
 C_LATE_CYCLES = C_BASE + 24
 """Callbacks that ran in the cycle after their own and were caught up by the next one (nothing lost)."""
-C_END = C_BASE + 26
+C_LATE_AT = C_BASE + 26
+"""Server frame (cycle start) at which the last late cycle was seen."""
+C_SLIP_AT = C_BASE + 27
+"""Server frame (cycle start) at which the last lasting change was first seen."""
+C_SLIP_CAND_AT = C_BASE + 28
+C_CB_HIST = C_BASE + 29
+"""Histogram of callback durations: bin 0 below 1 us, bin b (1..CB_HIST_BINS-1) from 2^(b-1) us, the last open."""
+CB_HIST_BINS = 14
+C_END = C_CB_HIST + CB_HIST_BINS
 
 REF_CALLBACKS = 16
 """Callbacks after a stream start that set the reference and are not timed."""
@@ -166,6 +174,7 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
             if k == ctl[C_SLIP_NET]:
                 if ctl[C_SLIP_PEND] != 0:
                     # The offset came back: the previous callback ran in the next cycle and this one caught up.
+                    ctl[C_LATE_AT] = ctl[C_SLIP_CAND_AT]
                     ctl[C_LATE_CYCLES] += 1
                     ctl[C_SLIP_PEND] = 0
             elif ctl[C_SLIP_PEND] == 0 or ctl[C_SLIP_CAND] != k:
@@ -173,6 +182,7 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
                 ctl[C_SLIP_PEND] = 1
                 ctl[C_SLIP_CAND_FRAME] = engine_frame
                 ctl[C_SLIP_CAND_TAP] = tap_head
+                ctl[C_SLIP_CAND_AT] = cycle
             else:
                 # The offset held for a second callback: periods were lost (or served twice) for good.
                 delta = k - ctl[C_SLIP_NET]
@@ -181,6 +191,7 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
                 ctl[C_SLIP_DELTA] = delta
                 ctl[C_SLIP_FRAME] = ctl[C_SLIP_CAND_FRAME]
                 ctl[C_SLIP_TAP] = ctl[C_SLIP_CAND_TAP]
+                ctl[C_SLIP_AT] = ctl[C_SLIP_CAND_AT]
                 ctl[C_SLIP_TOTAL] += delta if delta > 0 else -delta
                 ctl[C_SLIP_EVENTS] += 1
         ctl[C_TIME_N] = n + 1
@@ -197,6 +208,12 @@ def cycle_end(ctl_addr, t0_ns):
     if ctl[C_TIME_N] >= REF_CALLBACKS or ctl[C_HOST_PERIOD] == 0:
         if dt > ctl[C_CB_NS_MAX]:
             ctl[C_CB_NS_MAX] = dt
+        b = 0
+        us = dt // 1000
+        while us > 0 and b < CB_HIST_BINS - 1:
+            us >>= 1
+            b += 1
+        ctl[C_CB_HIST + b] += 1
 
 
 # --- Python side ------------------------------------------------------------------------------
@@ -266,32 +283,61 @@ class JackFrameClock:
             self._client = None
 
 
-def port_status(ctl, samplerate, blocksize):
-    """The ``port`` section of the status: callback timing and the frame-time check."""
+def port_status(ctl, samplerate, blocksize, late_at=None):
+    """The ``port`` section of the status: callback timing and the per-cycle check.
+
+    ``late_at`` lists the server frames of late cycles (``engine.port_late``).
+    """
     period = int(ctl[C_HOST_PERIOD])
     block_s = blocksize / float(samplerate)
     max_ns = int(ctl[C_CB_NS_MAX])
     return {
         "host_period_frames": period,
-        "frame_time_check": period > 0,
+        "cycle_check": period > 0,
         "slip_events": int(ctl[C_SLIP_EVENTS]),
         "periods_off": int(ctl[C_SLIP_NET]),
         "periods_missing_or_repeated": int(ctl[C_SLIP_TOTAL]),
         "late_cycles": int(ctl[C_LATE_CYCLES]),
+        "late_at_server_frame": list(late_at or []),
         "late_start_max_frames": int(ctl[C_PHASE_MAX]),
         "callback_max_us": round(max_ns / 1e3, 3),
         "callback_last_us": round(int(ctl[C_CB_NS_LAST]) / 1e3, 3),
         "callback_max_fraction_of_block": round(max_ns * 1e-9 / block_s, 6),
+        "callback_p999_us_at_most": _hist_quantile(ctl, 0.999),
+        "callback_histogram_us": {(f"<{1 << b}" if b < CB_HIST_BINS - 1 else f">={1 << (b - 1)}"): int(ctl[C_CB_HIST + b])
+                                  for b in range(CB_HIST_BINS) if ctl[C_CB_HIST + b]},
     }
 
 
+def _hist_quantile(ctl, q):
+    """Upper edge (us) of the histogram bin holding quantile ``q`` of the callback durations (None: no data)."""
+    counts = [int(ctl[C_CB_HIST + b]) for b in range(CB_HIST_BINS)]
+    total = sum(counts)
+    if total == 0:
+        return None
+    acc = 0
+    for b, c in enumerate(counts):
+        acc += c
+        if acc >= q * total:
+            return float(1 << b) if b < CB_HIST_BINS - 1 else None
+    return None
+
+
 def check_port(engine, seen):
-    """Supervisor step: turn each new change of the frame-time check into a gap record; returns the new count.
+    """Supervisor step: turn each new lasting change of the port check into a gap record; returns the new count.
 
     ``seen`` is the count already turned into records.  Changes closer than
-    one poll apart share one record (its ``events`` says how many).
+    one poll apart share one record (its ``events`` says how many).  Late
+    cycles (nothing lost) are listed in ``engine.port_late`` by the server
+    frame at which they were seen (the last 1000).
     """
     ctl = engine.block.ctl
+    late = int(ctl[C_LATE_CYCLES])
+    late_list = engine.__dict__.setdefault("port_late", [])
+    if late != engine.__dict__.get("_port_late_seen", 0):
+        engine._port_late_seen = late
+        late_list.append(int(ctl[C_LATE_AT]))
+        del late_list[:-1000]
     events = int(ctl[C_SLIP_EVENTS])
     if events == seen:
         return seen
@@ -301,9 +347,10 @@ def check_port(engine, seen):
         what = f"{delta} server cycle(s) of {period} frames passed without this stream"
     else:
         what = f"{-delta} server cycle(s) of {period} frames served twice"
-    gap = {"tap_frame": int(ctl[C_SLIP_TAP]), "engine_frame": int(ctl[C_SLIP_FRAME]), "gap_s": round(delta * period / float(engine.samplerate), 6),
+    gap = {"tap_frame": int(ctl[C_SLIP_TAP]), "engine_frame": int(ctl[C_SLIP_FRAME]),
+           "gap_s": round(delta * period / float(engine.samplerate), 6),
            "reason": f"port: {what} (server frame counter against frames delivered)",
-           "periods": delta, "events": events - seen}
+           "periods": delta, "server_frame": int(ctl[C_SLIP_AT]), "events": events - seen}
     engine.gaps.append(gap)
     if engine.tap is not None:
         engine.tap.gaps.append(gap)
