@@ -12,12 +12,10 @@ Usage::
     python tools/bench_control.py [--trials 300] [--blocksize 256] [--samplerate 48000] [--no-midi] [--live]
 
 ``--live`` measures the real engine instead: a :class:`~rtstage.live.supervisor.LiveEngine`
-on a private JACK dummy server (64-frame period), driven through
-:class:`~rtstage.control.live_target.LiveTarget`.  There the time of the block
-that applied a change is when the target's housekeeping thread saw the
-callback's applied record (it polls every 0.5 ms while a change is in flight;
-the callback writes the record at the start of the block), so the figure is
-an upper bound by at most that poll interval.
+on a private JACK dummy server (64-frame period, ``--realtime`` where SCHED_FIFO is
+permitted), driven through :class:`~rtstage.control.live_target.LiveTarget`.  There the
+time of effect is the start of the block that applied the change, from the
+callback's own ``CLOCK_MONOTONIC`` stamp (:mod:`rtstage.live.handoff`).
 
 Prints one JSON object per transport on stdout (p50, p99, max in ms, the goal,
 and p99/goal as a ratio measured in this run); progress on stderr.

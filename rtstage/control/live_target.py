@@ -22,7 +22,10 @@ flight:
    (:meth:`LiveEngine.set_settings`: encode, then the seqlock write; tens of
    microseconds, no waiting on the audio thread).  Otherwise the
    housekeeping thread publishes it as soon as the one in flight is applied.
-3. The thread polls ``applied`` (every ``poll_s``) until the callback has taken that
+3. The thread sleeps until just after the next callback returns
+   (:class:`rtstage.live.handoff.BlockWaiter`: the callback stamps its start
+   and end with ``CLOCK_MONOTONIC``; one wake-up per block, no fixed poll)
+   and looks at ``applied`` until the callback has taken that
    publication, then records ``(frame, values)``: in :attr:`applied`, in the
    automation log (:class:`~rtstage.control.automation.AutomationWriter`) and
    for :meth:`wait`.  Changes submitted meanwhile wait in the pending set and
@@ -93,7 +96,8 @@ class LiveTarget(ControlTarget):
         self.apply_timeout_s = float(apply_timeout_s)
         self.poll_s = float(poll_s)
         self.applied = []
-        """``(frame, values, monotonic_s)`` of every applied change; ``monotonic_s`` is when it was seen applied."""
+        """``(frame, values, monotonic_s)`` of every applied change; ``monotonic_s`` is when the block that applied it
+        started (from the callback's own clock), or when it was seen applied if that is unknown."""
         self.publications = 0
         self._values = params.defaults()
         self._values.update(params.values_from_settings(engine.settings))
@@ -225,12 +229,15 @@ class LiveTarget(ControlTarget):
     def _run(self):
         from ..live.realtime import enter_control_thread
 
+        from ..live.handoff import BlockWaiter
+
         self.engine.control_thread_info = enter_control_thread()  # SCHED_FIFO below the audio thread, if permitted
+        self._waiter = BlockWaiter(self.engine.block.ctl, self.engine.samplerate, self.engine.blocksize)
         while not self._stop.is_set():
             if self._inflight is not None:
                 self._check_applied()
                 if self._inflight is not None:
-                    time.sleep(self.poll_s)
+                    self._waiter.wait()  # until the next callback has returned, not a fixed poll
                     continue
             if self._try_publish():
                 continue
@@ -268,10 +275,11 @@ class LiveTarget(ControlTarget):
             applied_seq, frame = S.applied(self.engine.block.ctl)
             if applied_seq >= seq:
                 self._inflight = None
-                self._record(ticket, int(frame), values)
+                waiter = getattr(self, "_waiter", None)
+                self._record(ticket, int(frame), values, waiter.effect_time_s(frame) if waiter else None)
 
-    def _record(self, ticket, frame, values):
-        now = time.monotonic()
+    def _record(self, ticket, frame, values, effect_s=None):
+        now = time.monotonic() if effect_s is None else effect_s
         if frame is not None:
             self.applied.append((frame, values, now))
             if self.automation_log is not None:

@@ -372,3 +372,27 @@ def _log(message):
     import sys
 
     print(f"rtstage: {message}", file=sys.stderr, flush=True)
+
+
+def warm_meter_thread(block, samplerate, thread_class, **thread_kwargs):
+    """Run one complete meter-thread step on a scratch copy of ``block``'s layout, before the stream starts.
+
+    Everything the meter thread calls that numba compiles (the meter ring
+    read, the bank's kernels, the snapshot) is compiled, or loaded from the
+    cache, here; otherwise the thread's first step compiles it while audio
+    runs, holding the GIL for seconds with a cold cache and starving the
+    control, MIDI and hand-off threads (and publishing no snapshot until it is
+    done).
+    """
+    from . import shared as S
+
+    nch, out_bits, max_frames = block.geometry[0], block.geometry[1], block.geometry[2]
+    scratch = S.SharedBlock(nch, out_bits, max_frames, 0, 0, 8 * max_frames)
+    scratch.kernel.iparams[:] = block.kernel.iparams
+    scratch.kernel.fparams[:] = block.kernel.fparams
+    frames = 2 * max_frames
+    words = np.zeros((frames, nch), dtype=scratch.out_dtype)
+    S.meter_ring_write(scratch.ctl, scratch.meter_x, scratch.meter_words, np.zeros((frames, nch)), words, frames)
+    thread = thread_class(scratch, samplerate, **thread_kwargs)
+    thread.step(final=True)
+    return thread.latest()

@@ -54,7 +54,7 @@ from ..log import log
 from ..errors import RtstageError
 from . import shared as S
 from .sources import check_source, gen_params, load_source_file, parse_source
-from .realtime import engine_realtime, start_notice
+from .realtime import engine_realtime, start_notice, warm_meter_thread
 from .tap import TapWriter
 from .timing import check_port, port_status
 
@@ -585,6 +585,8 @@ class LiveEngine:
         warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
         warm.report()
         self._meter_shapers = {tuple(shaper.coefs): shaper.id}
+        warm_meter_thread(self.block, self.samplerate, MeterThread,  # the ring read and snapshot path too
+                          loudness_target=getattr(self, "loudness_target", None))
         self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name,
                                         loudness_target=getattr(self, "loudness_target", None)).start()
 

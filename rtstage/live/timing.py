@@ -116,7 +116,13 @@ C_SLIP_CAND_AT = C_BASE + 28
 C_CB_HIST = C_BASE + 29
 """Histogram of callback durations: bin 0 below 1 us, bin b (1..CB_HIST_BINS-1) from 2^(b-1) us, the last open."""
 CB_HIST_BINS = 14
-C_END = C_CB_HIST + CB_HIST_BINS
+C_CB_START_NS = C_CB_HIST + CB_HIST_BINS
+"""CLOCK_MONOTONIC (ns) at which the latest callback started: before it took pending parameters."""
+C_CB_DONE_NS = C_CB_START_NS + 1
+"""CLOCK_MONOTONIC (ns) at which the latest callback returned."""
+C_CB_START_FRAME = C_CB_DONE_NS + 1
+"""Engine sample index of the first frame of the latest callback (written with ``C_CB_START_NS``)."""
+C_END = C_CB_START_FRAME + 1
 
 REF_CALLBACKS = 16
 """Callbacks after a stream start that set the reference and are not timed."""
@@ -195,14 +201,19 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
                 ctl[C_SLIP_TOTAL] += delta if delta > 0 else -delta
                 ctl[C_SLIP_EVENTS] += 1
         ctl[C_TIME_N] = n + 1
-    return _now_ns(ctl_addr, ctl)
+    t0 = _now_ns(ctl_addr, ctl)
+    ctl[C_CB_START_FRAME] = engine_frame
+    ctl[C_CB_START_NS] = t0
+    return t0
 
 
 @njit(nogil=True)
 def cycle_end(ctl_addr, t0_ns):
     """End of a callback: record its duration."""
     ctl = carray(address_to_voidptr(ctl_addr), (C_END,), np.int64)
-    dt = _now_ns(ctl_addr, ctl) - t0_ns
+    t1 = _now_ns(ctl_addr, ctl)
+    ctl[C_CB_DONE_NS] = t1
+    dt = t1 - t0_ns
     ctl[C_CB_NS_LAST] = dt
     ctl[C_CB_NS_SUM] += dt
     if ctl[C_TIME_N] >= REF_CALLBACKS or ctl[C_HOST_PERIOD] == 0:
