@@ -697,6 +697,10 @@ def open_api(api="auto", client_name="rtstage"):
     raise RtstageError("no MIDI API could be opened (" + "; ".join(reasons or ["none compiled in"]) + ")")
 
 
+IN_POLL_S = 0.001
+"""How often the MIDI worker thread takes input messages from RtMidi's queue (JACK delivers MIDI once per period)."""
+
+
 class MidiControl:
     """MIDI input and feedback output driving a :class:`~rtstage.control.protocol.Controller`.
 
@@ -720,8 +724,10 @@ class MidiControl:
 
     Notes
     -----
-    The rtmidi callback only queues the message; a worker thread decodes,
-    maps and applies it, and sends feedback.  Errors from a change (out of
+    RtMidi queues input messages (no Python runs in the MIDI backend's
+    thread, which with JACK is the graph's process thread); a worker thread
+    takes them every :data:`IN_POLL_S`, decodes, maps and applies them, and
+    sends feedback.  Errors from a change (out of
     range for this engine, for example) are logged and dropped.
     """
 
@@ -779,7 +785,7 @@ class MidiControl:
                 port.close_port()
             except Exception:
                 pass
-        self._in.cancel_callback()
+        self._cancel_in_callback()
         del self._in
         del self._out
 
@@ -819,8 +825,10 @@ class MidiControl:
             self._queue.put(("feedback", values, key))
 
     def _setup_in(self):
+        # No rtmidi callback: with the JACK API, RtMidi calls it from JACK's process thread, where the Python
+        # wrapper must take the GIL; any Python thread holding it (a meter update, a compile) then stalls the
+        # whole JACK graph.  The worker thread takes messages from RtMidi's queue instead (IN_POLL_S).
         self._in.ignore_types(sysex=True, timing=True, active_sense=True)
-        self._in.set_callback(self._on_message)
 
     def _renew(self, old, factory):
         # A port that went away is reopened on a new client: some backends
@@ -835,7 +843,7 @@ class MidiControl:
         if not self.virtual and self.in_port is not None:
             names = self._in.get_ports()
             if self.in_connected is not None and self.in_connected not in names:
-                self._in.cancel_callback()
+                self._cancel_in_callback()
                 self._in = self._renew(self._in, _rtmidi().MidiIn)
                 self._setup_in()
                 _log(f"midi: input {self.in_connected} went away")
@@ -866,10 +874,26 @@ class MidiControl:
         with self._fb_lock:
             self.feedback.on_connect(self.controller.target.get())
 
+    def _cancel_in_callback(self):
+        try:
+            self._in.cancel_callback()  # none is set (see _setup_in); kept for ports opened by older code
+        except Exception:
+            pass
+
+    def _drain_input(self):
+        while True:
+            try:
+                message = self._in.get_message()
+            except Exception:
+                return
+            if not message:
+                return
+            self._handle_item(("midi", message[0]))
+
     def _run(self):
         t_poll = time.monotonic() + self.poll_s
         while not self._stop.is_set():
-            timeout = 0.005 if self.feedback.next_due_s() else max(0.0, t_poll - time.monotonic())
+            timeout = IN_POLL_S
             try:
                 item = self._queue.get(timeout=timeout)
             except queue.Empty:
@@ -877,6 +901,7 @@ class MidiControl:
             if item is None:
                 break
             try:
+                self._drain_input()
                 self._handle_item(item)
                 if time.monotonic() >= t_poll:
                     self._reconnect()
