@@ -273,15 +273,29 @@ def apply_socket_options(sock, config):
         sock.setsockopt(socket.IPPROTO_IPV6, socket.IPV6_TCLASS, tos)
     else:
         sock.setsockopt(socket.IPPROTO_IP, socket.IP_TOS, tos)
-    if config.ttl is not None:
+    if config.multicast:
+        set_multicast_options(sock, config.ttl, config.multicast_interface)
+    elif config.ttl is not None:
         if v6:
-            opt = socket.IPV6_MULTICAST_HOPS if config.multicast else socket.IPV6_UNICAST_HOPS
-            sock.setsockopt(socket.IPPROTO_IPV6, opt, int(config.ttl))
+            sock.setsockopt(socket.IPPROTO_IPV6, socket.IPV6_UNICAST_HOPS, int(config.ttl))
         else:
-            opt = socket.IP_MULTICAST_TTL if config.multicast else socket.IP_TTL
-            sock.setsockopt(socket.IPPROTO_IP, opt, int(config.ttl))
-    if config.multicast_interface:
-        iface = str(config.multicast_interface)
+            sock.setsockopt(socket.IPPROTO_IP, socket.IP_TTL, int(config.ttl))
+
+
+def set_multicast_options(sock, ttl=None, interface=None):
+    """Multicast TTL / hop limit and outgoing interface on ``sock``.
+
+    ``interface`` is a local IPv4 address (``IP_MULTICAST_IF``), or for IPv6 an
+    interface name or index (``IPV6_MULTICAST_IF``).
+    """
+    v6 = sock.family == socket.AF_INET6
+    if ttl is not None:
+        if v6:
+            sock.setsockopt(socket.IPPROTO_IPV6, socket.IPV6_MULTICAST_HOPS, int(ttl))
+        else:
+            sock.setsockopt(socket.IPPROTO_IP, socket.IP_MULTICAST_TTL, int(ttl))
+    if interface:
+        iface = str(interface)
         try:
             if v6:
                 index = int(iface) if iface.isdigit() else socket.if_nametoindex(iface)
