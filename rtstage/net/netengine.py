@@ -329,6 +329,9 @@ class NetEngine:
         self.vq = np.zeros((0, nch), dtype=np.float64)
         self.genw = np.zeros((nch, 4), dtype=np.uint64)
         self.devs = np.zeros(DEV_CAPACITY, dtype=np.int64)
+        for arr in (self.net_ring, self.tap_ring, self.devs):
+            arr.fill(1)  # touch every page now: no page fault on the clocked threads' first writes
+            arr.fill(0)
         self._warm()
         if self.tap_path:
             info = {"settings": self.settings.to_dict(), "samplerate": rate, "source": self.source.describe()}
