@@ -25,6 +25,7 @@ Usage: ``.venv/bin/python tools/bench_rtp.py [--seconds 60] [--ptime-ms 1] [--pr
 
 import argparse
 import json
+import os
 import socket
 import sys
 import threading
@@ -44,6 +45,13 @@ def _clock_pair(clock_id):
         if best is None or b - a < best[0]:
             best = (b - a, m, (a + b) // 2)
     return best[1], best[2]
+
+
+def _cpu_ticks():
+    """(busy, steal) clock ticks of all CPUs from /proc/stat (steal: time the hypervisor ran something else)."""
+    fields = [int(v) for v in open("/proc/stat").readline().split()[1:]]
+    user, nice, system, idle, iowait, irq, softirq, steal = fields[:8]
+    return user + nice + system + irq + softirq, steal
 
 
 def main():
@@ -89,7 +97,9 @@ def main():
     q0, r0 = engine._q0r0
     first_ideal = int(N.sample_time_ns(q0, r0, rate, fpp))
     pair_start = _clock_pair(clock_id)
+    cpu_start = _cpu_ticks()
     time.sleep(args.seconds)
+    cpu_end = _cpu_ticks()
     pair_end = _clock_pair(clock_id)
     sent_at_end = int(engine.ctl[C_SENT])
     status = engine.stop()
@@ -115,6 +125,10 @@ def main():
             hi = mid - 1
     due = lo
     devs = engine.send_deviations_ns() / 1e6
+    late = devs > float(engine.out.ptime)
+    episodes = int(np.count_nonzero(late[1:] & ~late[:-1]) + (1 if late.size and late[0] else 0))
+    hz = os.sysconf("SC_CLK_TCK")
+    ncpu = os.cpu_count()
     out = status["streams"]["rtp_out"]
     report = {
         "seconds": args.seconds,
@@ -128,6 +142,9 @@ def main():
                               "p999": round(float(np.percentile(devs, 99.9)), 4),
                               "max": round(float(devs.max()), 4)},
         "late_packets": out["late_packets"],
+        "late_episodes": episodes,
+        "machine": {"cpus": ncpu, "busy_fraction": round((cpu_end[0] - cpu_start[0]) / hz / args.seconds / ncpu, 3),
+                    "steal_s": round((cpu_end[1] - cpu_start[1]) / hz, 3)},
         "sender_waits": out["sender_waits"],
         "send_errors": out["send_errors"],
         "producer_wake_late_max_ms": status["wake_late_max_ms"],
