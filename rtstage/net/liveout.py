@@ -16,7 +16,7 @@ import time
 import numpy as np
 from numba import njit
 
-from ..engine import log
+from ..log import log
 from . import _native as N
 from .netengine import C_DONE, C_LEN, C_SEND_ERRORS, C_SEND_QUIT, C_SENT, C_TAP_DROPPED, C_TAP_HEAD, C_TAP_TAIL, _TapThread
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
@@ -85,6 +85,7 @@ class LiveRtpOutput:
         self.pkt = np.zeros(self.config.packet_bytes, dtype=np.uint8)
         self._tap = _TapThread(tap, self.ctl, self.tap_ring, samplerate, bits, info or {}) if tap else None
         self._sock = open_sender_socket(self.config)
+        self.origin_host = self._sock.getsockname()[0]
         self._thread = None
         self._warm()
 

@@ -39,7 +39,8 @@ import numpy as np
 from numba import njit
 
 from .. import kernel as K
-from ..engine import Engine, container_bits, log
+from ..engine import Engine
+from ..log import log
 from ..errors import RtstageError
 from ..live.sources import fill_generated
 from . import _native as N

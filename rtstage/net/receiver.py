@@ -41,7 +41,7 @@ import time
 
 import numpy as np
 
-from ..engine import log
+from ..log import log
 from ..errors import RtstageError
 from .rtp import ENCODINGS, RTP_VERSION, parse_header, unpack_payload
 

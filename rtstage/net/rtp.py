@@ -146,8 +146,11 @@ def encoding_for_bits(bits, encoding=None):
     return name
 
 
-def parse_hostport(text, what="address"):
-    """``(host, port)`` from ``HOST:PORT`` or ``[IPV6]:PORT``; the host must be a numeric IP address."""
+def parse_hostport(text, what="address", allow_any_port=False):
+    """``(host, port)`` from ``HOST:PORT`` or ``[IPV6]:PORT``; the host must be a numeric IP address.
+
+    ``allow_any_port`` accepts port 0 (a receiver then binds any free port and says which).
+    """
     text = str(text).strip()
     if text.startswith("["):
         host, sep, rest = text[1:].partition("]")
@@ -166,7 +169,7 @@ def parse_hostport(text, what="address"):
         port = int(port_text)
     except ValueError:
         raise RtstageError(f"{what} {text!r}: port {port_text!r} is not a number") from None
-    if not 1 <= port <= 65535:
+    if not (0 if allow_any_port else 1) <= port <= 65535:
         raise RtstageError(f"{what} {text!r}: port must be 1..65535")
     return host, port
 

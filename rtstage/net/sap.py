@@ -26,7 +26,7 @@ import socket
 import threading
 import zlib
 
-from ..engine import log
+from ..log import log
 from ..errors import RtstageError
 
 SAP_PORT = 9875

@@ -62,7 +62,7 @@ def parse_net_source(text, encoding=None, samplerate=None, channels=None, depth_
     """
     head, _, rest = text.partition(":")
     if head == "rtp":
-        host, port = parse_hostport(rest, "--source rtp:")
+        host, port = parse_hostport(rest, "--source rtp:", allow_any_port=True)
         missing = [name for name, v in (("--rtp-in-encoding", encoding), ("--samplerate", samplerate),
                                         ("--channels", channels)) if v is None]
         if missing:
