@@ -109,8 +109,12 @@ class Announcements:
             self.sap = None
 
 
-def run_deviceless(args, settings):
-    """``rtstage run --device none``: the engine clocked by rtstage (or by an RTP source); RTP and tap out."""
+def run_deviceless(args, settings, control_wiring):
+    """``rtstage run --device none``: the engine clocked by rtstage (or by an RTP source); RTP and tap out.
+
+    ``control_wiring`` is the ``run`` command's control layer (socket, MIDI,
+    automation log), which drives this engine as it drives a live one.
+    """
     from ..net.netengine import NetEngine
     from ..net.source import is_net_source, parse_net_source
 
@@ -128,6 +132,8 @@ def run_deviceless(args, settings):
 
         source = parse_source(args.source)
     check_outputs(args)
+    if args.automation_log and os.path.exists(args.automation_log) and not args.force:
+        raise RtstageError(f"automation log {args.automation_log} exists; use --force to replace it")
     if opts is not None:
         log(NET_CAUTION)
     engine = NetEngine(settings, source, samplerate=args.samplerate, channels=args.channels, rtp_out=opts,
@@ -141,12 +147,14 @@ def run_deviceless(args, settings):
     if announce is not None:
         announce.__enter__()
     try:
-        status = engine.run(duration_s=args.duration)
+        with control_wiring(engine, args) as wiring:
+            status = engine.run(duration_s=args.duration)
     finally:
         if engine.state != "stopped":
             engine.stop()
         if announce is not None:
             announce.__exit__(None, None, None)
+    status.update(wiring.summary())
     write_status(args, status)
     return 0
 

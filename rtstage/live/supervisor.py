@@ -647,4 +647,6 @@ class LiveEngine:
             "restarts": status["restarts"],
             "auto_muted": status["auto_muted"],
         })
+        if "streams" in status:
+            out["streams"] = status["streams"]
         return out

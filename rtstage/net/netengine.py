@@ -42,6 +42,7 @@ from .. import kernel as K
 from ..engine import Engine
 from ..log import log
 from ..errors import RtstageError
+from ..live import shared as S
 from ..live.sources import fill_generated
 from . import _native as N
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
@@ -82,7 +83,7 @@ _WAIT_NS = 20_000
 @njit(nogil=True, cache=True)
 def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, gen_amp, gen_seed, src, loop_src,
                   xbuf, ybuf, vq, genw, iparams, fparams, hist, counts, kclock, ramp, rng_words, rng_tag,
-                  net_ring, tap_ring, ts):
+                  net_ring, tap_ring, ts, pctl, pending_ip, pending_fp, scratch_ip, scratch_fp):
     k = 0
     while ctl[C_STOP] == 0:
         deadline = N.sample_time_ns(q0, r0, rate, k * fpp)
@@ -90,6 +91,8 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
         late = N.now_ns(clock_id, ts) - deadline
         if late > ctl[C_WAKE_LATE_MAX]:
             ctl[C_WAKE_LATE_MAX] = late
+        # New settings (control socket) at the block boundary, through the live engine's seqlock.
+        S.take_params(pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fparams, kclock[K.CLK_FRAME])
         n = fpp
         if mode == MODE_FILE:
             pos = ctl[C_SRC_POS]
@@ -167,6 +170,26 @@ def _send_loop(ctl, clock_id, paced, q0, r0, rate, fpp, net_ring, words, pkt, fd
         ctl[C_SENT] = k
         if last:
             return
+
+
+class _ControlBlock:
+    """What the control layer reaches of an engine: kernel state, and the seqlock of pending parameters.
+
+    The same layout as :class:`rtstage.live.shared.SharedBlock` where the two
+    meet (``ctl`` indices ``C_PARAM_SEQ``, ``C_APPLIED_*``; ``kernel``), so
+    :class:`rtstage.control.live_target.LiveTarget` drives either.
+    """
+
+    def __init__(self, engine):
+        self.kernel = engine.state
+        self.ctl = np.zeros(S.C_LEN, dtype=np.int64)
+        self.pending_ip = engine.state.iparams.copy()
+        self.pending_fp = engine.state.fparams.copy()
+        self.scratch_ip = np.zeros_like(self.pending_ip)
+        self.scratch_fp = np.zeros_like(self.pending_fp)
+
+    def seqlock(self):
+        return self.ctl, self.pending_ip, self.pending_fp, self.scratch_ip, self.scratch_fp
 
 
 class _TapThread:
@@ -267,6 +290,7 @@ class NetEngine:
         self.loop = bool(loop)
         self.block_ms = float(block_ms)
         self.state = "new"
+        self.block = None
         self.out = None
         self.receiver = None
         self.realtime = {}
@@ -311,6 +335,7 @@ class NetEngine:
         self.channels = int(self.channels)
         self.engine = Engine(self.settings, self.channels, self.samplerate)
         self.settings = self.engine.settings
+        self.block = _ControlBlock(self.engine)
         rate = self.samplerate
         if self.rtp_out_options is not None:
             self.out = RtpOutConfig(samplerate=rate, channels=self.channels, bits=self.settings.bits,
@@ -357,7 +382,10 @@ class NetEngine:
         kind, freq, amp, seed = self._gen_params()
         mode = MODE_FILE if getattr(self.source, "kind", None) == "file" else MODE_GENERATOR
         _produce_loop(ctl, self.clock_id, 0, 0, self.samplerate, self.fpp, mode, kind, freq, amp, seed, self._src,
-                      0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(), self.net_ring, self.tap_ring, ts)
+                      0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(), self.net_ring, self.tap_ring, ts,
+                      *self.block.seqlock())
+        S.publish_params(np.zeros(S.C_LEN, dtype=np.int64), self.block.pending_ip.copy(), self.block.pending_fp.copy(),
+                         self.block.pending_ip, self.block.pending_fp)
         # The kernel itself, once on silence, on a scratch state.
         K.process_block(self.xbuf, self.ybuf, self.vq, self.fpp, *st.arrays())
         if self.out is not None:
@@ -419,7 +447,7 @@ class NetEngine:
             def produce():
                 _produce_loop(self.ctl, self.clock_id, q0, r0, rate, self.fpp, mode, kind, freq, amp, seed, self._src,
                               1 if self.loop else 0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(),
-                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64))
+                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *self.block.seqlock())
 
             self._thread("engine-clock", produce).start()
         log(f"running without a device: {rate} Hz, {self.channels} ch, {self.settings.bits}-bit "
@@ -437,6 +465,7 @@ class NetEngine:
             if gap is not None and self._tap is not None:
                 self._tap.gaps.append({"tap_frame": int(self.ctl[C_TAP_HEAD]), **gap})
             n = x.shape[0]
+            S.take_params(*self.block.seqlock(), *self.engine.state.arrays()[:2], self.engine.frame)
             if self._in_y.shape[0] < n:
                 self._in_y = np.zeros((n, self.channels), dtype=self.engine.dtype)
             y = self._in_y[:n]
@@ -508,6 +537,44 @@ class NetEngine:
             self._sock.close()
             self._sock = None
         return status
+
+    # --- control surface (rtstage.control.live_target.LiveTarget) -------------------------
+    def set_settings(self, settings):
+        """Publish new settings; the clocked thread takes them at its next block.  Returns the sequence number."""
+        from dataclasses import replace
+
+        from ..engine import container_bits, encode_params
+
+        settings = replace(settings, seed=self.settings.seed).resolved()
+        if container_bits(settings.bits) != container_bits(self.settings.bits):
+            raise RtstageError(f"bits={settings.bits} does not fit this stream's {self.engine.container}-bit output")
+        width = 16 if self.engine.container == 16 else 32
+        new_ip = np.zeros_like(self.block.pending_ip)
+        new_fp = np.zeros_like(self.block.pending_fp)
+        encode_params(settings, self.samplerate, width - settings.bits, new_ip, new_fp)
+        seq = S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, new_ip, new_fp)
+        self.settings = settings
+        self.engine.settings = settings
+        return int(seq)
+
+    def wait_applied(self, seq, timeout_s=2.0):
+        """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
+        deadline = time.monotonic() + timeout_s
+        while True:
+            applied_seq, frame = S.applied(self.block.ctl)
+            if applied_seq >= seq:
+                return int(frame)
+            if time.monotonic() >= deadline:
+                return None
+            time.sleep(0.001)
+
+    def meters(self):
+        """Engine counters and the per-stream figures (no level meters without a device yet)."""
+        status = self.status()
+        nch = self.channels or 0
+        return {"frame": status["engine_frame"], "peak_dbfs": [None] * nch, "rms_dbfs": [None] * nch,
+                "clipped": status["clipped"], "nonfinite": status["nonfinite"], "levels_available": False,
+                "state": status["state"], "streams": status["streams"]}
 
     # --- figures -------------------------------------------------------------------------
     def send_deviations_ns(self):
