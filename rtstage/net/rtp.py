@@ -54,7 +54,8 @@ References
 .. [2] RFC 3551, "RTP Profile for Audio and Video Conferences with Minimal Control", 2003.
 .. [3] RFC 3190, "RTP Payload Format for 12-bit DAT Audio and 20- and 24-bit Linear Sampled Audio", 2002.
 .. [4] AES67-2018, "AES standard for audio applications of networks - High-performance
-   streaming audio-over-IP interoperability", §7.2 (packet time), Annex B (DiffServ).
+   streaming audio-over-IP interoperability", §7.2 (packet time), Annex B (DiffServ); the section
+   numbers are from memory.
 .. [5] RFC 2474, "Definition of the Differentiated Services Field", 1998 (DSCP in the TOS byte).
 """
 
@@ -86,7 +87,8 @@ DEFAULT_DSCP = "AF41"
 CLOCK_DSCP = 46
 """EF: AES67 keeps it for the clock's event messages; media may not use it."""
 MAX_PAYLOAD_BYTES = 1440
-"""Largest payload accepted: keeps a packet inside a 1500-byte Ethernet MTU (AES67 §8.2: 1440 bytes of payload)."""
+"""Largest payload accepted: keeps a packet inside a 1500-byte Ethernet MTU with IP, UDP and RTP headers
+(AES67 sets a 1440-byte payload limit; the figure is from memory of AES67-2018, not re-checked here)."""
 
 
 def parse_ptime_ms(value):
@@ -235,7 +237,7 @@ class RtpOutConfig:
         self.payload_bytes = self.frames * self.channels * self.sample_bytes
         if self.payload_bytes > MAX_PAYLOAD_BYTES:
             raise RtstageError(f"{self.frames} frames of {self.channels} channels in {self.encoding} make a "
-                               f"{self.payload_bytes}-byte payload, more than {MAX_PAYLOAD_BYTES} (AES67 §8.2); "
+                               f"{self.payload_bytes}-byte payload, more than {MAX_PAYLOAD_BYTES} (AES67's limit); "
                                "choose a shorter packet time or fewer channels")
 
     @property
