@@ -146,9 +146,14 @@ def run_deviceless(args, settings, control_wiring):
                                  arrival_clocked=engine.arrival_clocked)
     if announce is not None:
         announce.__enter__()
+    line = None if args.quiet else StatusLine(engine).start()
     try:
         with control_wiring(engine, args) as wiring:
-            status = engine.run(duration_s=args.duration)
+            try:
+                status = engine.run(duration_s=args.duration)
+            finally:
+                if line is not None:
+                    line.stop()
     finally:
         if engine.state != "stopped":
             engine.stop()
@@ -157,6 +162,47 @@ def run_deviceless(args, settings, control_wiring):
     status.update(wiring.summary())
     write_status(args, status)
     return 0
+
+
+def stream_summary(status):
+    """One line of per-stream figures from a status dict."""
+    parts = [f"frame {status.get('engine_frame', 0)}"]
+    out = status.get("streams", {}).get("rtp_out")
+    if out:
+        text = f"out {out['packets_sent']} pkts"
+        dev = out.get("send_deviation_ms")
+        if dev:
+            text += f", send dev p50 {dev['p50']:.3f} p99 {dev['p99']:.3f} max {dev['max']:.3f} ms, late {out['late_packets']}"
+        parts.append(text)
+    inp = status.get("streams", {}).get("rtp_in")
+    if inp:
+        parts.append(f"in {inp['packets_received']} pkts, lost {inp['lost']}, late {inp['late']}, reordered "
+                     f"{inp['reordered']}, duplicated {inp['duplicated']}, jitter {inp['jitter_ms']:.3f} ms")
+    return "; ".join(parts)
+
+
+class StatusLine:
+    """One status line a second on stderr while the deviceless engine runs (``--quiet`` turns it off)."""
+
+    def __init__(self, engine, interval_s=1.0):
+        import threading
+
+        self.engine = engine
+        self.interval_s = interval_s
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="rtstage-status-line", daemon=True)
+
+    def start(self):
+        self._thread.start()
+        return self
+
+    def _run(self):
+        while not self._stop.wait(self.interval_s):
+            log(stream_summary(self.engine.status()))
+
+    def stop(self):
+        self._stop.set()
+        self._thread.join()
 
 
 def write_status(args, status):
