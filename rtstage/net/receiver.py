@@ -53,6 +53,24 @@ _WINDOW = 4096
 """How many played sequence numbers are remembered to tell a duplicate from a late packet."""
 
 
+SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35)
+"""Linux socket option (asm-generic/socket.h: 35); Python's socket module does not name it."""
+_CMSG_BYTES = socket.CMSG_SPACE(16)
+_TIMESPEC = struct.Struct("@qq")
+
+
+def _arrival_s(ancillary, fallback_s):
+    """Arrival time in seconds from an SCM_TIMESTAMPNS message (CLOCK_REALTIME), else ``fallback_s``.
+
+    Jitter uses differences of arrival times only, so either clock serves.
+    """
+    for level, kind, data in ancillary:
+        if level == socket.SOL_SOCKET and kind == SO_TIMESTAMPNS and len(data) >= 16:  # SCM_TIMESTAMPNS
+            sec, nsec = _TIMESPEC.unpack_from(data)
+            return sec + nsec * 1e-9
+    return fallback_s
+
+
 class JitterBuffer:
     """Reorders packets by extended sequence number; see the module notes.
 
@@ -243,6 +261,11 @@ class RtpReceiver:
             sock.close()
             raise RtstageError(f"cannot receive RTP on {self.host}:{self.port}: {exc}") from None
         sock.settimeout(0.05)
+        try:  # the kernel's arrival time of each datagram, for the jitter estimate (Python's wake-up adds none)
+            sock.setsockopt(socket.SOL_SOCKET, SO_TIMESTAMPNS, 1)
+            self._kernel_stamps = True
+        except (AttributeError, OSError):
+            self._kernel_stamps = False
         self._sock = sock
         self.port = sock.getsockname()[1]
         return self
@@ -259,13 +282,13 @@ class RtpReceiver:
         try:
             while not self._stop.is_set():
                 try:
-                    data = self._sock.recv(65536)
+                    data, ancillary, _, _ = self._sock.recvmsg(65536, _CMSG_BYTES)
                 except socket.timeout:
                     if last is not None and self.idle_s is not None and time.monotonic() - last >= self.idle_s:
                         break
                     continue
                 last = time.monotonic()
-                self._packet(data, last)
+                self._packet(data, _arrival_s(ancillary, last))
             self._deliver(self.buffer.flush() if self.buffer is not None else [])
         except Exception as exc:  # reported by stop() and the status; never silently
             self.error = exc
