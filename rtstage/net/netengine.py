@@ -480,7 +480,7 @@ class NetEngine:
                                     multicast_interface=src.multicast_interface)
         self.receiver.open()
         log(f"receiving RTP {src.encoding} on {src.host}:{self.receiver.port}")
-        self.realtime["rtp-in"] = None
+        self.realtime["rtp-in"] = False  # a Python thread (it takes the GIL): normal scheduling
         self.receiver.start()
 
     @property

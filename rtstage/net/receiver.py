@@ -378,4 +378,5 @@ class RtpReceiver:
             "frames_out": int(self.frames_out),
             "gaps": list(self.gaps),
             "ignored": dict(self.other),
+            "error": None if self.error is None else str(self.error),
         }
