@@ -20,7 +20,15 @@ granted, for ``--seconds`` (default 60).  Prints one JSON object:
   clock at the end (checks the count follows the clock; 0 expected);
 * ``received``: packets the sink got (loopback).
 
-Usage: ``.venv/bin/python tools/bench_rtp.py [--seconds 60] [--ptime-ms 1] [--priority 70] [--clock local|tai]``
+* ``baseline``: the same priority, clock and 1 ms deadlines in a plain C
+  loop (``tools/rt_wake_baseline.c``, built with gcc into ``tools/build/``)
+  that only wakes up and reads the clock, run for ``--baseline-seconds``
+  (default 20, 0 to skip) before rtstage's run: the lateness the machine
+  itself imposes on any realtime thread.  ``ratio_p99_to_baseline`` compares
+  rtstage's p99 send deviation with the baseline's p99 wake-up lateness.
+
+Usage: ``.venv/bin/python tools/bench_rtp.py [--seconds 60] [--ptime-ms 1] [--priority 70] [--clock local|tai]
+[--baseline-seconds 20]``
 """
 
 import argparse
@@ -54,6 +62,25 @@ def _cpu_ticks():
     return user + nice + system + irq + softirq, steal
 
 
+def _baseline(seconds, priority):
+    """Build and run tools/rt_wake_baseline.c; its JSON result, or the reason it could not run."""
+    import subprocess
+    from pathlib import Path
+
+    here = Path(__file__).resolve().parent
+    build = here / "build"
+    build.mkdir(exist_ok=True)
+    exe = build / "rt_wake_baseline"
+    try:
+        subprocess.run(["gcc", "-O2", "-o", str(exe), str(here / "rt_wake_baseline.c")], check=True,
+                       capture_output=True, text=True)
+        out = subprocess.run([str(exe), str(int(seconds * 1000)), str(priority)], check=True, capture_output=True,
+                             text=True, timeout=seconds + 60).stdout
+        return json.loads(out)
+    except (OSError, subprocess.SubprocessError, ValueError) as exc:
+        return {"error": str(exc)}
+
+
 def main():
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--seconds", type=float, default=60.0)
@@ -61,7 +88,9 @@ def main():
     p.add_argument("--priority", type=int, default=70, help="SCHED_FIFO priority (0: normal scheduling)")
     p.add_argument("--clock", choices=("local", "tai"), default="local")
     p.add_argument("--channels", type=int, default=2)
+    p.add_argument("--baseline-seconds", type=float, default=20.0)
     args = p.parse_args()
+    baseline = _baseline(args.baseline_seconds, args.priority) if args.baseline_seconds > 0 else None
 
     from rtstage import EngineSettings
     from rtstage.live.sources import parse_source
@@ -150,6 +179,9 @@ def main():
         "producer_wake_late_max_ms": status["wake_late_max_ms"],
         "drift_samples": round(sent * fpp - expected_frames, 3),
         "schedule_error_samples": (sent_at_end - due) * fpp,
+        "baseline": baseline,
+        "ratio_p99_to_baseline": (round(float(np.percentile(devs, 99)) / baseline["p99_ms"], 3)
+                                  if baseline and baseline.get("p99_ms") else None),
         "goals": {"p99_le_0.25ms": float(np.percentile(devs, 99)) <= 0.25, "no_late": out["late_packets"] == 0},
     }
     print(json.dumps(report, indent=1))
