@@ -50,12 +50,14 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
     settings = EngineSettings(bits=16, dither="tpdf", shaper="flat", seed=33)
     tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json", "err.txt"))
     sink = PacketCollector()
+    sap_sink = PacketCollector()
     with open(err, "w") as f:
         proc = subprocess.Popen(
             [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", source, "--samplerate", str(SR),
              "--channels", "2", "--bits", "16", "--dither", "tpdf", "--seed", "33", "--rtp-out",
              f"{LOOPBACK}:{sink.port}", "--rtp-ptime-ms", "4", "--tap", tap, "--status-file", st,
-             "--automation-log", log_path, "--control-port", str(_free_port()), "--quiet"],
+             "--automation-log", log_path, "--control-port", str(_free_port()), "--quiet",
+             "--rtp-sap", f"{LOOPBACK}:{sap_sink.port}"],
             cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
     try:
         port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
@@ -73,6 +75,7 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
             proc.kill()
             proc.wait()
     packets = sink.stop()
+    announcements = sap_sink.stop()
     out = status["live"]["streams"]["rtp_out"]
     assert out["packets_sent"] > 0 and out["frames_per_packet"] == 192  # 4 ms at 48 kHz (AES67 §7.2)
     assert meters["streams"]["rtp_out"]["ssrc"] == out["ssrc"]
@@ -90,3 +93,6 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
     final = json.load(open(st))
     assert final["streams"]["rtp_out"]["packets_sent"] == len(packets)
     assert final["control_changes_applied"] == 1
+    # RFC 2974 §3: an announcement at the start and a deletion (T bit) at the stop, both carrying the SDP.
+    assert [(p[0] >> 2) & 1 for p in announcements] == [0, 1]
+    assert f"m=audio {sink.port} RTP/AVP 96".encode() in announcements[0]
