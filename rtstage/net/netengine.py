@@ -8,8 +8,9 @@ Paced (a file or generator source)
     ``CLOCK_TAI`` when asked), and at the deadline of packet k runs the
     engine's kernel (:func:`rtstage.kernel.process_block`, on the arrays of an
     :class:`rtstage.engine.Engine`) on that packet's frames and writes the
-    words into SPSC rings (network, tap).  Deadline k is the clock time of
-    the packet's first sample, ``ceil((s0 + k·F)·1e9 / rate)`` ns, computed
+    words into SPSC rings (network, tap).  Deadline k lies
+    :data:`PRODUCER_LEAD_S` (whole packets, at least one) before the packet's
+    send time; times are ``ceil((s0 + j)·1e9 / rate)`` ns for sample j, computed
     from the packet count alone: a late wake-up never shifts later ones, so the
     sample count follows the clock for as long as it runs (no drift).
     A sender thread runs :func:`_send_loop`, also compiled and without the
@@ -76,6 +77,9 @@ MODE_FILE = 1
 DEV_CAPACITY = 1 << 18
 """Send deviations kept (the last 262144 packets: 4.4 min at 1 ms)."""
 DEFAULT_RT_PRIORITY = 70
+PRODUCER_LEAD_S = 0.002
+"""How far ahead of its send time a packet is computed (rounded up to whole packets, at least one):
+a producer woken late by less than this never delays a send."""
 _WAIT_NS = 20_000
 """Sleep between looks at an empty ring (the sender waiting for words)."""
 
@@ -83,10 +87,10 @@ _WAIT_NS = 20_000
 @njit(nogil=True, cache=True)
 def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, gen_amp, gen_seed, src, loop_src,
                   xbuf, ybuf, vq, genw, iparams, fparams, hist, counts, kclock, ramp, rng_words, rng_tag,
-                  net_ring, tap_ring, ts, pctl, pending_ip, pending_fp, scratch_ip, scratch_fp):
+                  net_ring, tap_ring, ts, pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, lead_frames):
     k = 0
     while ctl[C_STOP] == 0:
-        deadline = N.sample_time_ns(q0, r0, rate, k * fpp)
+        deadline = N.sample_time_ns(q0, r0, rate, (k + 1) * fpp - lead_frames)
         N.sleep_until(clock_id, deadline, ts)
         late = N.now_ns(clock_id, ts) - deadline
         if late > ctl[C_WAKE_LATE_MAX]:
@@ -350,6 +354,9 @@ class NetEngine:
         ring_rows = max(rate, 64 * self.fpp)
         self.net_ring = np.zeros((ring_rows if self.out is not None else 0, nch), dtype=dtype)
         self.tap_ring = np.zeros((2 * ring_rows if self.tap_path else 0, nch), dtype=dtype)
+        # The producer runs PRODUCER_LEAD_S (at least one packet) ahead of the sender, in whole packets.
+        lead_packets = max(1, -(-int(round(PRODUCER_LEAD_S * rate)) // self.fpp))
+        self.lead_frames = lead_packets * self.fpp
         self.xbuf = np.zeros((self.fpp, nch), dtype=np.float64)
         self.ybuf = np.zeros((self.fpp, nch), dtype=dtype)
         self.vq = np.zeros((0, nch), dtype=np.float64)
@@ -383,7 +390,7 @@ class NetEngine:
         mode = MODE_FILE if getattr(self.source, "kind", None) == "file" else MODE_GENERATOR
         _produce_loop(ctl, self.clock_id, 0, 0, self.samplerate, self.fpp, mode, kind, freq, amp, seed, self._src,
                       0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(), self.net_ring, self.tap_ring, ts,
-                      *self.block.seqlock())
+                      *self.block.seqlock(), self.fpp)
         S.publish_params(np.zeros(S.C_LEN, dtype=np.int64), self.block.pending_ip.copy(), self.block.pending_fp.copy(),
                          self.block.pending_ip, self.block.pending_fp)
         # The kernel itself, once on silence, on a scratch state.
@@ -447,7 +454,8 @@ class NetEngine:
             def produce():
                 _produce_loop(self.ctl, self.clock_id, q0, r0, rate, self.fpp, mode, kind, freq, amp, seed, self._src,
                               1 if self.loop else 0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(),
-                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *self.block.seqlock())
+                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *self.block.seqlock(),
+                              self.lead_frames)
 
             self._thread("engine-clock", produce).start()
         log(f"running without a device: {rate} Hz, {self.channels} ch, {self.settings.bits}-bit "
