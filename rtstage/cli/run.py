@@ -8,6 +8,8 @@ from ..errors import RtstageError
 from ..log import log
 from .options import (add_control_arguments, add_engine_options, add_midi_arguments, midi_from_args, positive_float,
                       server_from_args, settings_from_args)
+from .rtp import (NET_CAUTION, Announcements, add_rtp_arguments, check_outputs, is_deviceless, rtp_out_options,
+                  run_deviceless)
 
 
 def register(subparsers):
@@ -22,7 +24,8 @@ def register(subparsers):
         "and follow local codes and licensed practice for listening levels.",
     )
     dev = run.add_argument_group("device")
-    dev.add_argument("--device", help="device for input and output: index or name substring (exact name first)")
+    dev.add_argument("--device", help="device for input and output: index or name substring (exact name first); "
+                     "'none': no device, the engine clocked by rtstage or by an RTP source (docs/rtp.md)")
     dev.add_argument("--input-device", help="input device (index or name)")
     dev.add_argument("--output-device", help="output device (index or name)")
     dev.add_argument("--hostapi", help="host API to choose devices from (index or name substring)")
@@ -36,7 +39,8 @@ def register(subparsers):
     add_engine_options(run)
     io = run.add_argument_group("source, tap and status")
     io.add_argument("--source", help="input instead of the input device: a sound file, 'silence', "
-                    "'tone[:freq_hz=F][,level_dbfs=L]' or 'noise[:level_dbfs=L][,seed=S]'")
+                    "'tone[:freq_hz=F][,level_dbfs=L]', 'noise[:level_dbfs=L][,seed=S]', "
+                    "or with --device none an RTP stream: 'rtp:HOST:PORT' or 'sdp:FILE'")
     io.add_argument("--loop", action="store_true", help="loop a file source instead of stopping at its end")
     io.add_argument("--tap", help="write exactly the words sent to the device into this file (gaps in TAP.gaps.json)")
     io.add_argument("--duration", type=positive_float, help="stop after this many seconds")
@@ -57,6 +61,7 @@ def register(subparsers):
                      help="write every change the engine applied, at its sample index, to FILE "
                      "(re-render offline with: rtstage render --automation FILE)")
     add_midi_arguments(run.add_argument_group("MIDI control"))
+    add_rtp_arguments(run)
     from ..service.runner import add_service_arguments
 
     add_service_arguments(run)  # last: it defers the defaults a feed file may set
@@ -67,6 +72,7 @@ def run_command(args):
     """Handler of ``rtstage run``."""
     from ..live.supervisor import LiveEngine
     from ..log import use_journal
+    from ..net.source import is_net_source
     from ..service.runner import (ServiceWiring, configure_engine, hold_reload_signal, load_run_feed,
                                   settings_with_feed)
 
@@ -74,6 +80,15 @@ def run_command(args):
     hold_reload_signal()
     feed = load_run_feed(args)
     settings = settings_with_feed(settings_from_args(args), feed)
+    if is_deviceless(args):
+        return run_deviceless(args, settings, ControlWiring)
+    if args.source and is_net_source(args.source):
+        raise RtstageError("an rtp: or sdp: source needs --device none (its arrival clocks the engine; "
+                           "rtstage does not adapt a stream's clock to a device's)")
+    rtp_out = rtp_out_options(args)
+    check_outputs(args)
+    if rtp_out is not None:
+        log(NET_CAUTION)
     if args.tap and os.path.exists(args.tap) and not args.force:
         raise RtstageError(f"tap file {args.tap} exists; use --force to replace it")
     if args.source is None and args.loop:
@@ -82,7 +97,7 @@ def run_command(args):
         settings, device=args.device, input_device=args.input_device, output_device=args.output_device,
         hostapi=args.hostapi, samplerate=args.samplerate, blocksize=args.blocksize, channels=args.channels,
         latency=args.latency, source=args.source, loop=args.loop, tap=args.tap, callback=args.callback,
-        settle_s=args.settle,
+        settle_s=args.settle, rtp_out=rtp_out,
     )
     configure_engine(engine, args)
     if args.loudness_target:
@@ -99,10 +114,15 @@ def run_command(args):
 
     for message in shaper_warnings(engine.settings, engine.samplerate):
         log(f"warning: {message}")
+    announce = None
+    if engine.net_out is not None:
+        announce = Announcements(args, engine.net_out.config, engine.net_out.origin_host, device_clocked=True)
     try:
         with ControlWiring(engine, args) as wiring, ServiceWiring(engine, wiring, args, feed) as service:
             from ..live.display import LiveDisplay
 
+            if announce is not None:
+                announce.__enter__()
             # in the journal, STATUS= carries the status line: no line a second
             display = LiveDisplay(engine, refresh_hz=10, quiet=args.quiet or in_journal).start()
             try:
@@ -112,6 +132,8 @@ def run_command(args):
     finally:
         if engine.state != "stopped":
             engine.stop()
+        if announce is not None:
+            announce.__exit__(None, None, None)
     status.update(wiring.summary())
     status.update(service.summary())
     _headroom_warning(status.get("meters"))

@@ -108,6 +108,10 @@ class LiveEngine:
     worker_load_thread : bool
         Benchmark only: run a busy pure-Python thread inside the stream
         worker, beside the callback.
+    rtp_out : dict or None
+        A second output: the words as RTP (:class:`rtstage.net.liveout.LiveRtpOutput`,
+        options of :class:`rtstage.net.rtp.RtpOutConfig`), fed from the tap ring, never
+        sent from the callback.
     """
 
     meter_ring_s = METER_RING_S
@@ -118,7 +122,7 @@ class LiveEngine:
 
     def __init__(self, settings, device=None, input_device=None, output_device=None, hostapi=None, samplerate=None,
                  blocksize=DEFAULT_BLOCKSIZE, channels=None, latency=None, source=None, loop=False, tap=None,
-                 callback="compiled", settle_s=1.0, stall_s=None, worker_load_thread=False):
+                 callback="compiled", settle_s=1.0, stall_s=None, worker_load_thread=False, rtp_out=None):
         self.requested = dict(device=device, input_device=input_device, output_device=output_device, hostapi=hostapi)
         self.settings = settings
         self.samplerate = samplerate
@@ -152,6 +156,8 @@ class LiveEngine:
         self.worker = None
         self.worker_load_thread = bool(worker_load_thread)
         self._shm_path = None
+        self.rtp_out_options = dict(rtp_out) if rtp_out else None
+        self.net_out = None
 
     # --- prepare --------------------------------------------------------------------
     def prepare(self):
@@ -178,7 +184,7 @@ class LiveEngine:
             check_source(src, self.samplerate)
         self.settings = self.settings.resolved(self.samplerate)
         self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
-        ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path else 0
+        ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path or self.rtp_out_options else 0
         src_frames = 0 if data is None else data.shape[0]
         meter_frames = max(int(self.meter_ring_s * self.samplerate), 8 * self.blocksize) if self.meter_ring_s > 0 else 0
         geometry = (self.channels, self.out_bits, self.blocksize, ring_frames, src_frames, meter_frames)
@@ -200,9 +206,14 @@ class LiveEngine:
         self._new_ip = np.zeros(K.IP_LEN, dtype=np.int64)
         self._new_fp = np.zeros(K.FP_LEN, dtype=np.float64)
         self._warm()
-        if self.tap_path:
-            info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
-                    "source": src.describe() if src else "input"}
+        info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
+                "source": src.describe() if src else "input"}
+        if self.rtp_out_options:
+            from ..net.liveout import LiveRtpOutput  # the ring's consumer: RTP packets, then the tap file
+
+            self.net_out = LiveRtpOutput(self.block, S.C_RING_HEAD, S.C_RING_TAIL, self.rtp_out_options,
+                                         self.samplerate, self.channels, self.settings.bits, tap=self.tap_path, info=info)
+        elif self.tap_path:
             self.tap = self.tap_writer(self.tap_path, self.block, self.samplerate, self.settings.bits, info)
         self._prepared = True
         return self
@@ -320,6 +331,8 @@ class LiveEngine:
             self.prepare()
         if self.tap is not None:
             self.tap.start()
+        if self.net_out is not None:
+            self.net_out.start()
         self._start_meters()
         self._open()
         self._start_time = time.monotonic()
@@ -394,6 +407,8 @@ class LiveEngine:
             self.gaps.append(gap)
             if self.tap is not None:
                 self.tap.gaps.append(gap)
+            if self.net_out is not None:
+                self.net_out.gaps.append(gap)
             self.restarts += 1
             log(f"resumed on '{self.output_name}' after {gap_s:.2f} s (attempt {attempt}); "
                 f"discontinuity at sample {frame} recorded")
@@ -468,6 +483,8 @@ class LiveEngine:
         self.state = "stopped"
         tap_summary = self.tap.close() if self.tap is not None else None
         self.tap = None
+        if self.net_out is not None:
+            tap_summary = self.net_out.close()
         meter_final = self._stop_meters()
         status = self.status()
         if tap_summary is not None:
@@ -563,6 +580,8 @@ class LiveEngine:
             "realtime": engine_realtime(self),
             "port": port_status(b.ctl, self.samplerate, self.blocksize, getattr(self, "port_late", None)) if b else {},
         }
+        if self.net_out is not None:
+            result["streams"] = {"rtp_out": self.net_out.stats()}
         return result
 
     # --- meters (rtstage.live.meterthread) --------------------------------------------
@@ -638,4 +657,6 @@ class LiveEngine:
             "restarts": status["restarts"],
             "auto_muted": status["auto_muted"],
         })
+        if "streams" in status:
+            out["streams"] = status["streams"]
         return out

@@ -1,0 +1,98 @@
+"""``rtstage run --device none`` under the control socket: a change mid-stream, the per-stream figures,
+and the words on the wire equal to the offline re-render with the automation log.
+
+Every packet goes to 127.0.0.1.
+"""
+
+import json
+import os
+import re
+import signal
+import socket
+import subprocess
+import sys
+import time
+
+import numpy as np
+import soundfile as sf
+from numpy.testing import assert_array_equal
+
+from rtstage import Engine, EngineSettings
+from rtstage.control.automation import AutomationPlayer, load_automation, process_with_automation
+from rtstage.control.client import ControlClient
+from rtstage.live.sources import generate
+
+from test_net_rtp import LOOPBACK, PacketCollector, read_rfc_packets
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+SR = 48000
+
+
+def _free_port():
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((LOOPBACK, 0))
+        return s.getsockname()[1]
+
+
+def _wait_for(path, pattern, proc, timeout_s=120):
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        m = re.search(pattern, open(path).read())
+        if m:
+            return m
+        assert proc.poll() is None, open(path).read()
+        time.sleep(0.05)
+    raise AssertionError(open(path).read())
+
+
+def test_control_socket_drives_the_deviceless_engine(tmp_path):
+    source = "noise:level_dbfs=-20,seed=9"
+    settings = EngineSettings(bits=16, dither="tpdf", shaper="flat", seed=33)
+    tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json", "err.txt"))
+    sink = PacketCollector()
+    sap_sink = PacketCollector()
+    with open(err, "w") as f:
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", source, "--samplerate", str(SR),
+             "--channels", "2", "--bits", "16", "--dither", "tpdf", "--seed", "33", "--rtp-out",
+             f"{LOOPBACK}:{sink.port}", "--rtp-ptime-ms", "4", "--tap", tap, "--status-file", st,
+             "--automation-log", log_path, "--control-port", str(_free_port()), "--quiet",
+             "--rtp-sap", f"{LOOPBACK}:{sap_sink.port}"],
+            cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
+    try:
+        port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
+        time.sleep(0.3)
+        with ControlClient(LOOPBACK, port, timeout_s=10) as client:
+            reply = client.request({"op": "set", "values": {"gain_db": -6.0}})
+            assert reply["ok"] and isinstance(reply["at_frame"], int)
+            status = client.request({"op": "status"})["status"]
+            meters = client.request({"op": "meters"})["meters"]
+        time.sleep(0.3)
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=30) == 0, open(err).read()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    packets = sink.stop()
+    announcements = sap_sink.stop()
+    out = status["live"]["streams"]["rtp_out"]
+    assert out["packets_sent"] > 0 and out["frames_per_packet"] == 192  # 4 ms at 48 kHz (AES67 §7.2)
+    assert meters["streams"]["rtp_out"]["ssrc"] == out["ssrc"]
+    assert status["settings"]["gain_db"] == -6.0
+
+    words = sf.read(tap, dtype="int16", always_2d=True)[0]
+    events = load_automation(log_path, samplerate=SR)
+    assert [v for _, v in events] == [{"gain_db": -6.0}] and events[0][0] == reply["at_frame"]
+    x = generate(source, SR, 2, 0, words.shape[0])
+    engine = Engine(settings, 2, SR)
+    expected = process_with_automation(engine, x, AutomationPlayer(events))
+    assert_array_equal(words, expected)
+    got = read_rfc_packets(packets, 96, 192, 2, 2)
+    assert_array_equal(got[:words.shape[0]], words.astype(np.int64))
+    final = json.load(open(st))
+    assert final["streams"]["rtp_out"]["packets_sent"] == len(packets)
+    assert final["control_changes_applied"] == 1
+    # RFC 2974 §3: an announcement at the start and a deletion (T bit) at the stop, both carrying the SDP.
+    assert [(p[0] >> 2) & 1 for p in announcements] == [0, 1]
+    assert f"m=audio {sink.port} RTP/AVP 96".encode() in announcements[0]
