@@ -304,6 +304,10 @@ def _modulation(plt, report, ch, dither, scale, coefs, title, directory):
         label = "theory: Q²/4" + (" × shaper noise gain" if coefs else "") + " for every input"
     elif coefs:
         label = f"theory: average for {name} dither × shaper noise gain"
+    elif dither == "rpdf" and abs(scale - 1.0) < 1e-12:
+        label = "theory for RPDF dither: a(1 − a)·Q² at input position a"
+    elif dither == "none":
+        label = "theory without dither: min(a, 1 − a)²·Q² at input position a"
     else:
         label = f"theory for {name} dither"
     ax.plot(a, theory_db, color="C3", lw=1.6, label=label)
