@@ -139,7 +139,7 @@ def add_examples(name, parser):
     The description is wrapped here, since a raw formatter keeps it as given.
     """
     text = EXAMPLES.get(name)
-    if not text:
+    if not text or parser.epilog:  # a command that writes its own worked example keeps it
         return
     if parser.description and "\n" not in parser.description:
         parser.description = textwrap.fill(parser.description, 79)
