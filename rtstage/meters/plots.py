@@ -220,6 +220,11 @@ def write_ntf_png(shaper_id, coefs, samplerate, path, design_samplerate_hz=None)
 
 def write_plots(report, directory, channel=0):
     """Write the four PNG figures of ``report`` into ``directory``; returns their paths."""
+    if "measure_version" in report:
+        raise RtstageError("a measure report holds no added-noise figures; draw its plots with "
+                           "'rtstage measure FILE --plot DIR'")
+    if "error_spectrum_bands_hz" not in report or not report.get("channels"):
+        raise RtstageError("not a meter report (no error spectrum or channels)")
     plt = _pyplot()
     os.makedirs(directory, exist_ok=True)
     ch = report["channels"][channel]
