@@ -51,7 +51,7 @@ import numpy as np
 from . import settings as _settings
 from .dither import DITHER_KINDS
 from .errors import RtstageError
-from .shapers import PRESET_SHAPER_DIR, all_shapers
+from .shapers import PRESET_SHAPER_DIR, all_shapers, shaper_families
 
 MONITOR_MODES = _settings.MONITOR_MODES
 """Values of ``monitor``: what the output carries (see the module docstring)."""
@@ -151,7 +151,8 @@ def _shapers():
 
 
 def _shaper_ids():
-    return tuple(_shapers())
+    # Families (thr9, gentle9) are accepted too: the engine takes the member for its rate.
+    return tuple(_shapers()) + shaper_families(_shapers())
 
 
 _TABLE = (

@@ -194,7 +194,7 @@ def get_shaper(name):
         # A family names one design per rate; until the rate is known, the 48 kHz member stands in.
         rate = 48000.0 if 48000.0 in members else min(members)
         return replace(members[rate], family=name)
-    families = sorted({_family(sid) for sid in presets} - {None})
+    families = shaper_families(presets)
     known = ", ".join(list(BUILTIN_SHAPERS) + list(presets) + [f"{f} (one design per rate)" for f in families])
     raise RtstageError(f"unknown shaper '{name}' (known: {known}; or give a path to a shaper .toml)")
 
@@ -218,6 +218,12 @@ def family_members(family, presets=None):
         if member is not None and member.design_samplerate_hz and abs(member.design_samplerate_hz - rate) < 0.5:
             found[rate] = member
     return found
+
+
+def shaper_families(presets=None):
+    """Ids of the shaper families among the preset shapers (``gentle9``, ``thr9``, ...), sorted."""
+    presets = preset_shapers() if presets is None else presets
+    return tuple(sorted({_family(sid) for sid in presets} - {None}))
 
 
 def fit_shaper_to_rate(shaper, samplerate):

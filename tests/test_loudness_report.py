@@ -55,3 +55,18 @@ def test_handed_over_meter_continues_the_programme():
     second = MeterBank.for_engine(engine, loudness_meter=first.loudness_meter)
     second.update(x, engine.process(x))
     assert second.report()["loudness"]["duration_s"] == pytest.approx(8.0)
+
+
+def test_programmes_are_measured_apart():
+    # Two programmes back to back, EBU Tech 3341 case 1 tone at -23 dBFS then the same at -30:
+    # each reads its own level (+-0.1 LU, the Tech's tolerance).
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    bank = MeterBank.for_engine(engine)
+    first, second = _tone(-23.0, 5.0), _tone(-30.0, 5.0)
+    bank.update(first, engine.process(first))
+    bank.loudness_meter.new_programme("late news")
+    bank.update(second, engine.process(second))
+    loud = bank.report()["loudness"]
+    assert loud["programme"] == 2 and loud["programme_label"] == "late news"
+    assert loud["integrated_lufs"] == pytest.approx(-30.0, abs=0.1)
+    assert [round(p["integrated_lufs"], 1) for p in loud["programmes"]] == [-23.0]

@@ -99,3 +99,14 @@ def test_missing_file_is_one_line(tmp_path, capsys):
     assert main(["measure", str(tmp_path / "none.wav")]) == 2
     err = capsys.readouterr().err
     assert err.startswith("rtstage: cannot read") and err.count("\n") == 1
+
+
+def test_report_command_reads_a_measure_report(files, tmp_path, capsys):
+    path = str(tmp_path / "m.json")
+    assert main(["measure", files["dithered"], "--report", path, "--quiet"]) == 0
+    capsys.readouterr()
+    assert main(["report", path]) == 0
+    assert "low bits: dithered" in capsys.readouterr().out
+    assert main(["report", path, "--plot", str(tmp_path / "p")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("rtstage: ") and err.count("\n") == 1

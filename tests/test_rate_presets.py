@@ -44,3 +44,14 @@ def test_family_follows_the_engine_rate_and_live_changes():
     engine = Engine(settings_from(None, shaper="thr9-44k1"), nchannels=1, samplerate=48000)
     assert engine.settings.shaper.id == "thr9-44k1"
     assert get_shaper("gentle9").family == "gentle9"
+
+
+def test_socket_accepts_a_family_and_the_engine_takes_the_rate_member():
+    # Over a real loopback control socket (127.0.0.1), as a client would set it.
+    from rtstage.control.testing import control_stack
+
+    with control_stack(samplerate=44100, logger=lambda message: None) as stack:
+        with stack.client() as client:
+            reply = client.request({"op": "set", "values": {"shaper": "gentle9"}})
+            assert reply["ok"] is True, reply
+        assert stack.target.engine.settings.shaper.id == "gentle9-44k1"

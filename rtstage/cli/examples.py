@@ -104,6 +104,31 @@ EXAMPLES = {
 
   # one minute of meter frames as JSON lines for the shift log
   rtstage watch --port 47231 --duration 60 --json --quiet > link-meters.jsonl""",
+    "feed": """\
+  # start the transmitter link's feed file from the commented example, then check it
+  rtstage feed example > link-a.toml
+  rtstage feed check link-a.toml
+
+  # the systemd unit that runs every feed file of the station
+  rtstage feed unit > rtstage@.service""",
+    "feed check": """\
+  # the transmitter link's feed file, resolved and validated without opening a device
+  rtstage feed check link-a.toml
+
+  # the same as JSON for the station's deployment script
+  rtstage feed check link-a.toml --json""",
+    "feed example": """\
+  # a commented feed file for a 16-bit transmitter link, to edit
+  rtstage feed example > link-a.toml
+
+  # read it on screen first
+  rtstage feed example""",
+    "feed unit": """\
+  # the template unit for the station's feeds (install as rtstage@.service)
+  rtstage feed unit > rtstage@.service
+
+  # the unit for the link's feed with the feed files kept elsewhere
+  rtstage feed unit link-a --feed-dir /srv/feeds""",
 }
 """Examples by command (``shaper design`` for sub-commands)."""
 
@@ -114,7 +139,7 @@ def add_examples(name, parser):
     The description is wrapped here, since a raw formatter keeps it as given.
     """
     text = EXAMPLES.get(name)
-    if not text:
+    if not text or parser.epilog:  # a command that writes its own worked example keeps it
         return
     if parser.description and "\n" not in parser.description:
         parser.description = textwrap.fill(parser.description, 79)

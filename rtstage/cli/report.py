@@ -52,6 +52,10 @@ def summary_lines(label, report):
             f"noise modulation {'--' if mod is None else f'{mod:.2f}'} dB; true peak {'--' if tp is None else f'{tp:.2f}'} dBTP; "
             f"clipped {ch.get('clipped_samples')}; active bits {ch.get('active_bits')}"
         )
+    if report.get("loudness"):
+        from ..meters.loudness import loudness_line
+
+        lines.append("  " + loudness_line(report["loudness"]))
     return lines
 
 
@@ -65,6 +69,14 @@ def run_report(args):
     except json.JSONDecodeError as exc:
         raise RtstageError(f"{args.file}: not valid JSON ({exc.msg})") from None
     found = reports_in(obj)
+    if isinstance(obj, dict) and "measure_version" in obj:
+        # A report of 'rtstage measure': its summary (its plots need the file: rtstage measure FILE --plot DIR).
+        from ..meters.measure import summary_lines as measure_lines
+
+        print("\n".join(measure_lines(obj)))
+        if args.plot:
+            raise RtstageError(f"{args.file} is a measure report: draw its plots with 'rtstage measure {obj.get('file')} --plot DIR'")
+        return 0
     for label, report in found:
         if not 1 <= args.channel <= len(report["channels"]):
             raise RtstageError(f"channel {args.channel} is not in the report (1..{len(report['channels'])})")

@@ -198,7 +198,20 @@ class MeterThread:
             self._switch = (int(frame), key)
         return None
 
+    def new_programme(self, label=None):
+        """Start a new loudness programme at the next chunk (thread-safe: the meter thread applies it)."""
+        with self._lock:
+            self._programme_request = (label,)
+
     def _flush(self):
+        with self._lock:
+            request, self._programme_request = getattr(self, "_programme_request", None), None
+        if request is not None:
+            self._flush_chunk()
+            self._bank.loudness_meter.new_programme(request[0])
+        self._flush_chunk()
+
+    def _flush_chunk(self):
         if self._fill == 0:
             return
         x, w = self._chunk_x[: self._fill], self._chunk_w[: self._fill]

@@ -64,6 +64,8 @@ REFRESH_DIVISOR = 6000
 """In :meth:`LoudnessMeter.report`, the gated figures are recomputed once ``hops // 6000`` new hops
 have arrived: every 100 ms for the first 10 minutes, then at most 1/6000 of the programme behind
 (a meter read ten times a second all day would otherwise spend a third of a core on them)."""
+MAX_PROGRAMMES = 100
+"""Closed programmes a meter keeps (the oldest are dropped)."""
 LRA_PERCENTILES = (10.0, 95.0)
 """Lower and upper percentiles of the loudness range (EBU Tech 3342)."""
 
@@ -250,6 +252,22 @@ class LoudnessMeter:
         self.hop_frames = max(1, int(round(HOP_S * self.samplerate)))
         _kweight_hops(np.zeros((0, self.nchannels)), 0, self.sos, np.zeros((self.nchannels, 4)),
                       np.zeros(self.nchannels), np.zeros(1, np.int64), self.hop_frames, np.zeros((1, self.nchannels)))
+        self.programmes = []
+        """Reports of the programmes closed by :meth:`new_programme`, oldest first (at most MAX_PROGRAMMES)."""
+        self.programme_label = None
+        self.reset()
+
+    def new_programme(self, label=None):
+        """Close the current programme (its report goes to :attr:`programmes`) and start the next one.
+
+        ``label`` names the new programme (for instance the item's title in
+        the station's running order); the closed one keeps its own.
+        """
+        if self.frames:
+            closed = self.report(exact=True)
+            self.programmes.append(closed)
+            del self.programmes[:-MAX_PROGRAMMES]
+        self.programme_label = None if label is None else str(label)[:200]
         self.reset()
 
     def reset(self):
@@ -369,15 +387,17 @@ class LoudnessMeter:
         low, high = (_lufs(float(p)) for p in picked)
         return {"loudness_range_lu": high - low, "low_lufs": low, "high_lufs": high, "relative_gate_lufs": threshold}
 
-    def report(self):
-        """Every reading as plain data (docs/meters.md, "Loudness")."""
+    def report(self, exact=False):
+        """Every reading as plain data (docs/meters.md, "Loudness"); ``exact`` skips the refresh rule."""
         size = self._hops.size
-        if self._cache is None or size - self._cache[0] >= max(1, size // REFRESH_DIVISOR):
+        if exact or self._cache is None or size - self._cache[0] >= max(1, size // REFRESH_DIVISOR):
             self._cache = (size, self.integrated(), self.loudness_range())
         _, integrated, lra = self._cache
         top = lambda s: _lufs(float(s.max())) if s.size else None  # noqa: E731
         return {
             "method": "ITU-R BS.1770-4, EBU Tech 3342",
+            "programme": len(self.programmes) + 1,
+            "programme_label": self.programme_label,
             "channel_weights": list(self.channel_weights),
             "duration_s": self.frames / self.samplerate,
             "momentary_lufs": self.momentary_lufs(),
@@ -529,6 +549,7 @@ def loudness_report(meter, true_peaks=None, target=None):
         When given, ``target`` holds :meth:`LoudnessTarget.check`'s result.
     """
     report = meter.report()
+    report["programmes"] = [dict(p) for p in meter.programmes]
     peak = None
     if true_peaks is not None and len(true_peaks):
         top = float(np.max(true_peaks))

@@ -308,9 +308,10 @@ def summary_lines(report):
              f"{report['channels_count']} channel(s), {report['duration_s']:.2f} s"]
     fmt = lambda v, d=1: "-" if v is None else f"{v:.{d}f}"  # noqa: E731
     for c, ch in enumerate(report["channels"]):
-        lines.append(
-            f"  channel {c + 1}: {fmt(ch['effective_bits'], 0)} bits in use ({fmt(ch['active_bits'], 0)} active) "
-            f"{ch['bit_pattern'] or ''}")
+        if ch["effective_bits"] is None:
+            lines.append(f"  channel {c + 1}: floating-point samples, no fixed word length")
+        else:
+            lines.append(f"  channel {c + 1}: {ch['effective_bits']} bits in use ({ch['active_bits']} active) {ch['bit_pattern']}")
         lines.append(f"    low bits: {ch['low_bits']}: {ch['low_bits_reason']}")
         lines.append(
             f"    peak {fmt(ch['sample_peak_dbfs'])} dBFS, true peak {fmt(ch['true_peak_dbtp'])} dBTP, "

@@ -220,6 +220,11 @@ def write_ntf_png(shaper_id, coefs, samplerate, path, design_samplerate_hz=None)
 
 def write_plots(report, directory, channel=0):
     """Write the four PNG figures of ``report`` into ``directory``; returns their paths."""
+    if "measure_version" in report:
+        raise RtstageError("a measure report holds no added-noise figures; draw its plots with "
+                           "'rtstage measure FILE --plot DIR'")
+    if "error_spectrum_bands_hz" not in report or not report.get("channels"):
+        raise RtstageError("not a meter report (no error spectrum or channels)")
     plt = _pyplot()
     os.makedirs(directory, exist_ok=True)
     ch = report["channels"][channel]
@@ -304,6 +309,10 @@ def _modulation(plt, report, ch, dither, scale, coefs, title, directory):
         label = "theory: Q²/4" + (" × shaper noise gain" if coefs else "") + " for every input"
     elif coefs:
         label = f"theory: average for {name} dither × shaper noise gain"
+    elif dither == "rpdf" and abs(scale - 1.0) < 1e-12:
+        label = "theory for RPDF dither: a(1 − a)·Q² at input position a"
+    elif dither == "none":
+        label = "theory without dither: min(a, 1 − a)²·Q² at input position a"
     else:
         label = f"theory for {name} dither"
     ax.plot(a, theory_db, color="C3", lw=1.6, label=label)
