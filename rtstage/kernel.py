@@ -196,10 +196,12 @@ HIST_MASK = HIST_LEN - 1
 
 FRAMES_PER_BLOCK_SHIFT = 2
 """A Philox block serves 2**FRAMES_PER_BLOCK_SHIFT = 4 frames of a channel."""
-RNG_RING_BLOCKS = 16
-"""Philox blocks kept per channel, a ring indexed by ``block & (RNG_RING_BLOCKS - 1)``."""
-RNG_LOOKAHEAD_BLOCKS = 8
-"""How many blocks ahead of its use a Philox block is computed."""
+CHUNK_FRAMES = 64
+"""Frames per chunk: the kernel computes a chunk's Philox blocks, then runs its frames."""
+RNG_RING_BLOCKS = 32
+"""Philox blocks kept per channel, a ring indexed by ``block & (RNG_RING_BLOCKS - 1)``;
+it holds a chunk's blocks and the one before (tpdf-hp)."""
+assert RNG_RING_BLOCKS >= (CHUNK_FRAMES >> FRAMES_PER_BLOCK_SHIFT) + 2
 RNG_TAG_FRAME = 0
 """Tag: the frame from which the ring is valid (-1: invalid)."""
 RNG_TAG_SEED = 1
@@ -358,6 +360,88 @@ def _round_clamp(value, lo, hi):
     return np.int64(r)
 
 
+@njit(nogil=True, cache=True, inline="always")
+def _fill_chunk(kind, seed, nch, first_index, last_index, rng_words):
+    """Compute the Philox blocks that samples ``first_index..last_index`` draw on, for every channel.
+
+    One call per chunk of at most CHUNK_FRAMES frames, ahead of the chunk's
+    frame loop: the blocks are independent of each other and of the
+    feedback loop, so they run back to back at full throughput instead of
+    waiting between the loop's serial steps.  ``tpdf-hp`` also draws on the
+    sample before the first.
+    """
+    lo = first_index - 1 if kind == DITHER_TPDF_HP else first_index
+    block_lo = lo >> FRAMES_PER_BLOCK_SHIFT
+    block_hi = last_index >> FRAMES_PER_BLOCK_SHIFT
+    for c in range(nch):
+        for block in range(block_lo, block_hi + 1):
+            _fill_block(seed, c, block, rng_words)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _rest_loop(x, y, vq, yq, n_lo, n_hi, frame0, hpos, fparams, hist, counts, rng_words, kind, ntaps, gain, scale,
+               q_lo, q_hi, dscale, fb_peak, shift, tap, wtap):
+    """Frames ``n_lo..n_hi-1`` with everything at rest: constant gain, requantized words, no mute.
+
+    The arithmetic of each sample is that of the general loop in
+    :func:`_process`, operation for operation, so the words and the state
+    are the same.  The feedback sum starts from its first product
+    ``h_1·e[n-1]`` instead of ``0.0 + h_1·e[n-1]``: the two differ only in
+    the sign of an all-zero sum, which changes neither the word nor the
+    stored error (see the module notes).  Returns the history slot after
+    the last frame.
+    """
+    nch = hist.shape[0]
+    dithered = kind != DITHER_NONE
+    for n in range(n_lo, n_hi):
+        index = frame0 + n
+        prev = (hpos - 1) & HIST_MASK
+        for c in range(nch):
+            xv = np.float64(x[n, c])
+            if not math.isfinite(xv):
+                counts[c, CNT_NONFINITE] += 1
+                if math.isnan(xv):
+                    xv = 0.0
+                elif xv > 0.0:
+                    xv = 1.0
+                else:
+                    xv = -1.0
+                for k in range(HIST_LEN):
+                    hist[c, k] = 0.0
+            v = xv * gain
+            if tap:
+                vq[n, c] = v
+            v *= scale
+            u = v
+            if ntaps > 0:
+                fb = fparams[FP_COEF0] * hist[c, prev]
+                for k in range(2, ntaps + 1):
+                    fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
+                u -= fb
+            d = 0.0
+            if dithered:
+                d = _dither(kind, c, index, rng_words) * dscale
+            q = np.floor(u + d + 0.5)
+            e = q - u
+            if q > q_hi or q < q_lo:
+                q = q_hi if q > q_hi else q_lo
+                counts[c, CNT_CLIPPED] += 1
+                e = q - u
+                if e > fb_peak:
+                    e = fb_peak
+                elif e < -fb_peak:
+                    e = -fb_peak
+            if abs(e) < _DENORMAL_GUARD:
+                e = 0.0
+            hist[c, hpos] = e
+            word = np.int64(q) << shift
+            y[n, c] = word
+            if wtap:
+                yq[n, c] = word
+        hpos = (hpos + 1) & HIST_MASK
+    return hpos
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
 def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag, yq):
     nch = hist.shape[0]
@@ -409,130 +493,138 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
             counts[c, CNT_AM_MUTED] = 0
     tap = vq.shape[0] >= nframes
     wtap = yq.shape[0] >= nframes
-    # Unless this block continues the last one with the same seed, prime the
-    # ring with the blocks of the first frames (one earlier for tpdf-hp); the
-    # frame loop then computes each block RNG_LOOKAHEAD_BLOCKS ahead of its use.
     dithered = kind != DITHER_NONE
-    seed_tag = iparams[IP_SEED]
-    if dithered and nframes > 0 and not (rng_tag[RNG_TAG_FRAME] == frame0 and rng_tag[RNG_TAG_SEED] == seed_tag):
-        block0 = frame0 >> FRAMES_PER_BLOCK_SHIFT
-        for block in range(block0 - 1, block0 + RNG_LOOKAHEAD_BLOCKS + 1):
-            for c in range(nch):
-                _fill_block(seed, c, block, rng_words)
 
-    for n in range(nframes):
-        if ramp_left > 0:
-            ramp_left -= 1
-            gain = target if ramp_left == 0 else gain + step
-        if eramp_left > 0:
-            eramp_left -= 1
-            egain = etarget if eramp_left == 0 else egain + estep
-        w0 = _toward(w0, ramp_frames if mode == MON_REQUANTIZED else 0)
-        w1 = _toward(w1, ramp_frames if mode == MON_ERROR else 0)
-        w2 = _toward(w2, ramp_frames if mode == MON_INPUT else 0)
-        mute_pos = _toward(mute_pos, mute_target)
-        # At rest in one mode, unmuted: the words come straight from q, the error or the input.
-        at_rest = mute_pos == 0 and ((mode == MON_REQUANTIZED and w0 == ramp_frames and w1 == 0 and w2 == 0)
-                                     or (mode == MON_ERROR and w1 == ramp_frames and w0 == 0 and w2 == 0)
-                                     or (mode == MON_INPUT and w2 == ramp_frames and w0 == 0 and w1 == 0))
-        index = frame0 + n
-        if dithered and (index & 3) == 0:
+    # The block runs in chunks of at most CHUNK_FRAMES frames: first the chunk's Philox
+    # blocks for every channel, then its frames, through the lean loop when nothing moves
+    # (constant gain, requantized words, no mute or auto-mute) and the general loop otherwise.
+    n_lo = 0
+    while n_lo < nframes:
+        n_hi = min(n_lo + CHUNK_FRAMES, nframes)
+        if dithered:
+            _fill_chunk(kind, seed, nch, frame0 + n_lo, frame0 + n_hi - 1, rng_words)
+        at_rest_all = (ramp_left == 0 and eramp_left == 0 and mode == MON_REQUANTIZED and w0 == ramp_frames
+                       and w1 == 0 and w2 == 0 and mute_pos == 0 and mute_target == 0 and not auto_mute)
+        if at_rest_all:
             for c in range(nch):
-                _fill_block(seed, c, (index >> FRAMES_PER_BLOCK_SHIFT) + RNG_LOOKAHEAD_BLOCKS, rng_words)
-        for c in range(nch):
-            xv = np.float64(x[n, c])
-            exact_zero = xv == 0.0
-            if not math.isfinite(xv):
-                counts[c, CNT_NONFINITE] += 1
-                if math.isnan(xv):
-                    xv = 0.0
-                elif xv > 0.0:
-                    xv = 1.0
-                else:
-                    xv = -1.0
-                for k in range(HIST_LEN):
-                    hist[c, k] = 0.0
-            # Auto-mute: exact digital zero held for `hold` frames mutes the channel.  With
-            # auto-mute off (its counters cleared at the block start) only a ramp back in
-            # after switching it off needs work, so the common path touches no counter.
-            muted = False
-            am_pos = 0
-            if auto_mute:
-                if exact_zero:
-                    if counts[c, CNT_ZERO_RUN] < hold:
-                        counts[c, CNT_ZERO_RUN] += 1
-                else:
-                    counts[c, CNT_ZERO_RUN] = 0
-                muted = counts[c, CNT_ZERO_RUN] >= hold
-                if muted:
-                    if counts[c, CNT_AM_MUTED] == 0:
-                        for k in range(HIST_LEN):
-                            hist[c, k] = 0.0
-                    counts[c, CNT_AM_MUTED] = 1
-                    counts[c, CNT_AM_FRAMES] += 1
-                else:
-                    counts[c, CNT_AM_MUTED] = 0
-                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
-                counts[c, CNT_AM_POS] = am_pos
-            elif counts[c, CNT_AM_POS] != 0:
-                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), 0)
-                counts[c, CNT_AM_POS] = am_pos
+                if counts[c, CNT_AM_POS] != 0:
+                    at_rest_all = False
+        if at_rest_all:
+            hpos = _rest_loop(x, y, vq, yq, n_lo, n_hi, frame0, hpos, fparams, hist, counts, rng_words, kind, ntaps,
+                              gain, scale, q_lo, q_hi, dscale, fb_peak, shift, tap, wtap)
+            n_lo = n_hi
+            continue
+        for n in range(n_lo, n_hi):
+            if ramp_left > 0:
+                ramp_left -= 1
+                gain = target if ramp_left == 0 else gain + step
+            if eramp_left > 0:
+                eramp_left -= 1
+                egain = etarget if eramp_left == 0 else egain + estep
+            w0 = _toward(w0, ramp_frames if mode == MON_REQUANTIZED else 0)
+            w1 = _toward(w1, ramp_frames if mode == MON_ERROR else 0)
+            w2 = _toward(w2, ramp_frames if mode == MON_INPUT else 0)
+            mute_pos = _toward(mute_pos, mute_target)
+            # At rest in one mode, unmuted: the words come straight from q, the error or the input.
+            at_rest = mute_pos == 0 and ((mode == MON_REQUANTIZED and w0 == ramp_frames and w1 == 0 and w2 == 0)
+                                         or (mode == MON_ERROR and w1 == ramp_frames and w0 == 0 and w2 == 0)
+                                         or (mode == MON_INPUT and w2 == ramp_frames and w0 == 0 and w1 == 0))
+            index = frame0 + n
+            for c in range(nch):
+                xv = np.float64(x[n, c])
+                exact_zero = xv == 0.0
+                if not math.isfinite(xv):
+                    counts[c, CNT_NONFINITE] += 1
+                    if math.isnan(xv):
+                        xv = 0.0
+                    elif xv > 0.0:
+                        xv = 1.0
+                    else:
+                        xv = -1.0
+                    for k in range(HIST_LEN):
+                        hist[c, k] = 0.0
+                # Auto-mute: exact digital zero held for `hold` frames mutes the channel.  With
+                # auto-mute off (its counters cleared at the block start) only a ramp back in
+                # after switching it off needs work, so the common path touches no counter.
+                muted = False
+                am_pos = 0
+                if auto_mute:
+                    if exact_zero:
+                        if counts[c, CNT_ZERO_RUN] < hold:
+                            counts[c, CNT_ZERO_RUN] += 1
+                    else:
+                        counts[c, CNT_ZERO_RUN] = 0
+                    muted = counts[c, CNT_ZERO_RUN] >= hold
+                    if muted:
+                        if counts[c, CNT_AM_MUTED] == 0:
+                            for k in range(HIST_LEN):
+                                hist[c, k] = 0.0
+                        counts[c, CNT_AM_MUTED] = 1
+                        counts[c, CNT_AM_FRAMES] += 1
+                    else:
+                        counts[c, CNT_AM_MUTED] = 0
+                    am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
+                    counts[c, CNT_AM_POS] = am_pos
+                elif counts[c, CNT_AM_POS] != 0:
+                    am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), 0)
+                    counts[c, CNT_AM_POS] = am_pos
 
-            v = xv * gain
-            if tap:
-                vq[n, c] = v
-            v *= scale
-            u = v
-            if ntaps > 0:
-                fb = 0.0
-                for k in range(1, ntaps + 1):
-                    fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
-                u -= fb
-            d = 0.0
-            if dithered:
-                d = _dither(kind, c, index, rng_words) * dscale
-            q = np.floor(u + d + 0.5)
-            e = q - u
-            if q > q_hi or q < q_lo:
-                q = q_hi if q > q_hi else q_lo
-                counts[c, CNT_CLIPPED] += 1
+                v = xv * gain
+                if tap:
+                    vq[n, c] = v
+                v *= scale
+                u = v
+                if ntaps > 0:
+                    fb = fparams[FP_COEF0] * hist[c, (hpos - 1) & HIST_MASK]
+                    for k in range(2, ntaps + 1):
+                        fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
+                    u -= fb
+                d = 0.0
+                if dithered:
+                    d = _dither(kind, c, index, rng_words) * dscale
+                q = np.floor(u + d + 0.5)
                 e = q - u
-                if e > fb_peak:
-                    e = fb_peak
-                elif e < -fb_peak:
-                    e = -fb_peak
-            if abs(e) < _DENORMAL_GUARD or muted:
-                e = 0.0
-            hist[c, hpos] = e
-            word = np.int64(q) << shift
-            if wtap:
-                yq[n, c] = word
-            if at_rest and am_pos == 0:
-                if mode == MON_REQUANTIZED:
-                    y[n, c] = word
-                elif mode == MON_ERROR:
-                    ev = (q - v) * cscale * egain
-                    ev = min(max(ev, -e_ceil), e_ceil)
-                    y[n, c] = _round_clamp(ev, c_lo, c_hi)
+                if q > q_hi or q < q_lo:
+                    q = q_hi if q > q_hi else q_lo
+                    counts[c, CNT_CLIPPED] += 1
+                    e = q - u
+                    if e > fb_peak:
+                        e = fb_peak
+                    elif e < -fb_peak:
+                        e = -fb_peak
+                if abs(e) < _DENORMAL_GUARD or muted:
+                    e = 0.0
+                hist[c, hpos] = e
+                word = np.int64(q) << shift
+                if wtap:
+                    yq[n, c] = word
+                if at_rest and am_pos == 0:
+                    if mode == MON_REQUANTIZED:
+                        y[n, c] = word
+                    elif mode == MON_ERROR:
+                        ev = (q - v) * cscale * egain
+                        ev = min(max(ev, -e_ceil), e_ceil)
+                        y[n, c] = _round_clamp(ev, c_lo, c_hi)
+                    else:
+                        y[n, c] = _round_clamp(v * cscale, c_lo, c_hi)
                 else:
-                    y[n, c] = _round_clamp(v * cscale, c_lo, c_hi)
-            else:
-                acc = 0.0
-                if w0 > 0:
-                    acc += w0 * (q * cscale)
-                if w1 > 0:
-                    ev = (q - v) * cscale * egain
-                    acc += w1 * min(max(ev, -e_ceil), e_ceil)
-                if w2 > 0:
-                    acc += w2 * (v * cscale)
-                acc *= inv_frames * ((ramp_frames - mute_pos) * inv_frames) * ((ramp_frames - am_pos) * inv_frames)
-                y[n, c] = _round_clamp(acc, c_lo, c_hi)
-        hpos = (hpos + 1) & HIST_MASK
+                    acc = 0.0
+                    if w0 > 0:
+                        acc += w0 * (q * cscale)
+                    if w1 > 0:
+                        ev = (q - v) * cscale * egain
+                        acc += w1 * min(max(ev, -e_ceil), e_ceil)
+                    if w2 > 0:
+                        acc += w2 * (v * cscale)
+                    acc *= inv_frames * ((ramp_frames - mute_pos) * inv_frames) * ((ramp_frames - am_pos) * inv_frames)
+                    y[n, c] = _round_clamp(acc, c_lo, c_hi)
+            hpos = (hpos + 1) & HIST_MASK
+        n_lo = n_hi
 
     if nframes > 0:
-        # Frames without dither fill nothing, so the ring no longer follows the clock.
+        # The ring holds the blocks of the last chunk (a cache: nothing depends on it).
         rng_tag[RNG_TAG_FRAME] = frame0 + nframes if dithered else -1
-        rng_tag[RNG_TAG_SEED] = seed_tag
+        rng_tag[RNG_TAG_SEED] = iparams[IP_SEED]
     clock[CLK_FRAME] = frame0 + nframes
     clock[CLK_HPOS] = hpos
     clock[CLK_RAMP_LEFT] = ramp_left
