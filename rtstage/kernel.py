@@ -196,10 +196,19 @@ HIST_MASK = HIST_LEN - 1
 
 FRAMES_PER_BLOCK_SHIFT = 2
 """A Philox block serves 2**FRAMES_PER_BLOCK_SHIFT = 4 frames of a channel."""
-RNG_RING_BLOCKS = 16
-"""Philox blocks kept per channel, a ring indexed by ``block & (RNG_RING_BLOCKS - 1)``."""
-RNG_LOOKAHEAD_BLOCKS = 8
-"""How many blocks ahead of its use a Philox block is computed."""
+CHUNK_FRAMES = 64
+"""Frames per chunk: the kernel computes a chunk's Philox blocks, then runs its frames."""
+RNG_RING_BLOCKS = 64
+"""Rows of 4 words per channel in ``rng_words``, a scratch area of the kernel: the chunk's
+dither values (as float64, 4 to a row), the lean loop's error window, and, in row
+RNG_SCRATCH_ROW, the Philox block being used.  Nothing is carried in it from one call to
+the next."""
+RNG_SCRATCH_ROW = RNG_RING_BLOCKS - 1
+DITHER_STRIDE = 4 * RNG_RING_BLOCKS
+"""Distance between two channels' areas in the flat float64 view of ``rng_words``."""
+WINDOW_OFFSET = CHUNK_FRAMES
+"""Start of a channel's error window (MAX_TAPS errors before the chunk, then the chunk's)."""
+assert WINDOW_OFFSET + MAX_TAPS + CHUNK_FRAMES <= 4 * RNG_SCRATCH_ROW
 RNG_TAG_FRAME = 0
 """Tag: the frame from which the ring is valid (-1: invalid)."""
 RNG_TAG_SEED = 1
@@ -294,35 +303,6 @@ def _uniform(word):
 
 
 @njit(nogil=True, cache=True, inline="always")
-def _fill_block(seed, c, block, rng_words):
-    """Compute Philox block ``block`` of channel ``c`` into its ring row."""
-    row = c * RNG_RING_BLOCKS + (block & (RNG_RING_BLOCKS - 1))
-    philox4x64(np.uint64(block), np.uint64(0), np.uint64(0), np.uint64(0), seed, np.uint64(c), rng_words, row)
-
-
-@njit(nogil=True, cache=True, inline="always")
-def _half(c, index, high, rng_words):
-    """Low (a) or high (b) 32 bits of word ``index & 3`` of block ``index >> 2`` (already in the ring)."""
-    w = rng_words[c * RNG_RING_BLOCKS + ((index >> FRAMES_PER_BLOCK_SHIFT) & (RNG_RING_BLOCKS - 1)), index & 3]
-    return w >> np.uint64(32) if high else w & _LOW32
-
-
-@njit(nogil=True, cache=True, inline="always")
-def _dither(kind, c, index, rng_words):
-    """Dither value in LSB (amplitude scale 1) for channel ``c`` at ``index``."""
-    a = _uniform(_half(c, index, False, rng_words))
-    if kind == DITHER_TPDF_HP:
-        return a - _uniform(_half(c, index - 1, False, rng_words))
-    if kind == DITHER_RPDF:
-        return a
-    b = _uniform(_half(c, index, True, rng_words))
-    if kind == DITHER_TPDF:
-        return a + b
-    # DITHER_GAUSSIAN, sigma = 0.5 LSB
-    return 0.5 * math.sqrt(-2.0 * math.log(a + 0.5)) * math.cos(_TWO_PI * (b + 0.5))
-
-
-@njit(nogil=True, cache=True, inline="always")
 def _toward(pos, target):
     """One frame of an integer ramp position toward ``target``."""
     if pos < target:
@@ -356,6 +336,197 @@ def _round_clamp(value, lo, hi):
     elif r < lo:
         r = lo
     return np.int64(r)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _fill_dither(kind, seed, nch, first_index, count, dscale, rng_words, dith):
+    """Dither of samples ``first_index .. first_index + count - 1`` of every channel, times ``dscale``.
+
+    Channel c's values land in ``dith[c * DITHER_STRIDE + j]``, j < count
+    (``dith`` is the flat float64 view of ``rng_words``); the row
+    ``c * RNG_RING_BLOCKS + RNG_SCRATCH_ROW`` holds the Philox block being
+    used.  One call per chunk, ahead of the chunk's frame loop: the blocks are
+    independent of each other and of the feedback loop, so they run back to
+    back at full throughput instead of waiting between the loop's serial
+    steps.  The values are those of :func:`_dither` times ``dscale``, the same
+    operations in the same order.
+    """
+    for c in range(nch):
+        base = c * DITHER_STRIDE
+        row = c * RNG_RING_BLOCKS + RNG_SCRATCH_ROW
+        a_prev = 0.0
+        if kind == DITHER_TPDF_HP:
+            before = first_index - 1
+            philox4x64(np.uint64(before >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
+                       np.uint64(c), rng_words, row)
+            a_prev = _uniform(rng_words[row, before & 3] & _LOW32)
+        for j in range(count):
+            index = first_index + j
+            if j == 0 or (index & 3) == 0:
+                philox4x64(np.uint64(index >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
+                           np.uint64(c), rng_words, row)
+            w = rng_words[row, index & 3]
+            a = _uniform(w & _LOW32)
+            if kind == DITHER_TPDF:
+                d = a + _uniform(w >> np.uint64(32))
+            elif kind == DITHER_RPDF:
+                d = a
+            elif kind == DITHER_TPDF_HP:
+                d = a - a_prev
+                a_prev = a
+            else:
+                b = _uniform(w >> np.uint64(32))
+                d = 0.5 * math.sqrt(-2.0 * math.log(a + 0.5)) * math.cos(_TWO_PI * (b + 0.5))
+            dith[base + j] = d * dscale
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _replace_nonfinite(xv):
+    """NaN -> 0, +Inf -> +1, -Inf -> -1 (full scale)."""
+    if math.isnan(xv):
+        return 0.0
+    return 1.0 if xv > 0.0 else -1.0
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _feedback_rest(fparams, hist, c, hpos, ntaps, e1):
+    """``h_1·e1 + h_2·e[n-2] + … + h_N·e[n-N]``, summed from k = 1 upwards, ``e1`` the newest error."""
+    fb = fparams[FP_COEF0] * e1
+    for k in range(2, ntaps + 1):
+        fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
+    return fb
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _limit(q, u, q_lo, q_hi, fb_peak):
+    """Clip rule: the limited word and its fed-back error."""
+    q = q_hi if q > q_hi else q_lo
+    e = q - u
+    if e > fb_peak:
+        e = fb_peak
+    elif e < -fb_peak:
+        e = -fb_peak
+    return q, e
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _u(i):
+    """An index as uint64: numba then emits no negative-index wraparound for it (the index is never negative)."""
+    return np.uint64(i)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+               q_lo, q_hi, fb_peak, shift, tap, wtap):
+    """Frames ``n_lo..n_hi-1`` with everything at rest: constant gain, requantized words, no mute.
+
+    The arithmetic of each sample is that of the general loop in
+    :func:`_process`, operation for operation, so the words and the state
+    are the same.  Channels run in pairs (lanes a and b), frame by frame
+    within the pair: the two recurrences are independent, so the processor
+    overlaps them.  Each one's newest error stays in a register (it is the
+    only operand on the feedback loop's critical path); the older ones are
+    read from a linear window (``dith`` from WINDOW_OFFSET on: the last
+    ``ntaps`` errors before the chunk, then the chunk's), so that the taps
+    are plain loads at fixed distances; the window is copied into the
+    circular history at the end.  The feedback sum starts from its first
+    product ``h_1·e[n-1]`` instead of ``0.0 + h_1·e[n-1]``: the two differ
+    only in the sign of an all-zero sum, which changes neither the word nor
+    the stored error (see the module notes).  Returns the history slot after
+    the last frame.
+    """
+    nch = hist.shape[0]
+    count = n_hi - n_lo
+    for a in range(0, nch, 2):
+        b = a + 1 if a + 1 < nch else a  # an odd last channel runs alone (lane b repeats nothing)
+        pair = b != a
+        # window: wa_base + ntaps + j holds e[n_lo + j]; below it the ntaps errors before the chunk
+        wa0 = a * DITHER_STRIDE + WINDOW_OFFSET
+        wb0 = b * DITHER_STRIDE + WINDOW_OFFSET
+        for k in range(1, ntaps + 1):
+            dith[_u(wa0 + ntaps - k)] = hist[a, (hpos0 - k) & HIST_MASK]
+            dith[_u(wb0 + ntaps - k)] = hist[b, (hpos0 - k) & HIST_MASK]
+        ea = hist[a, (hpos0 - 1) & HIST_MASK]
+        eb = hist[b, (hpos0 - 1) & HIST_MASK]
+        da0 = a * DITHER_STRIDE
+        db0 = b * DITHER_STRIDE
+        for j in range(count):
+            n = _u(n_lo + j)
+            wa = wa0 + ntaps + j  # this sample's slot in the window
+            xa = np.float64(x[n, a])
+            if not math.isfinite(xa):
+                counts[a, CNT_NONFINITE] += 1
+                xa = _replace_nonfinite(xa)
+                hist[a, :] = 0.0
+                for k in range(wa0, wa):
+                    dith[_u(k)] = 0.0
+                ea = 0.0
+            va = xa * gain
+            if tap:
+                vq[n, a] = va
+            va *= scale
+            ua = va
+            if ntaps > 0:
+                fb = fparams[FP_COEF0] * ea
+                for k in range(2, ntaps + 1):
+                    fb += fparams[FP_COEF0 + k - 1] * dith[_u(wa - k)]
+                ua -= fb
+            da = 0.0
+            if dithered:
+                da = dith[_u(da0 + j)]
+            qa = np.floor(ua + da + 0.5)
+            ea = qa - ua
+            if qa > q_hi or qa < q_lo:
+                counts[a, CNT_CLIPPED] += 1
+                qa, ea = _limit(qa, ua, q_lo, q_hi, fb_peak)
+            if abs(ea) < _DENORMAL_GUARD:
+                ea = 0.0
+            dith[_u(wa)] = ea
+            word_a = np.int64(qa) << shift
+            y[n, a] = word_a
+            if wtap:
+                yq[n, a] = word_a
+            if pair:
+                wb = wb0 + ntaps + j
+                xb = np.float64(x[n, b])
+                if not math.isfinite(xb):
+                    counts[b, CNT_NONFINITE] += 1
+                    xb = _replace_nonfinite(xb)
+                    hist[b, :] = 0.0
+                    for k in range(wb0, wb):
+                        dith[_u(k)] = 0.0
+                    eb = 0.0
+                vb = xb * gain
+                if tap:
+                    vq[n, b] = vb
+                vb *= scale
+                ub = vb
+                if ntaps > 0:
+                    fb = fparams[FP_COEF0] * eb
+                    for k in range(2, ntaps + 1):
+                        fb += fparams[FP_COEF0 + k - 1] * dith[_u(wb - k)]
+                    ub -= fb
+                db = 0.0
+                if dithered:
+                    db = dith[_u(db0 + j)]
+                qb = np.floor(ub + db + 0.5)
+                eb = qb - ub
+                if qb > q_hi or qb < q_lo:
+                    counts[b, CNT_CLIPPED] += 1
+                    qb, eb = _limit(qb, ub, q_lo, q_hi, fb_peak)
+                if abs(eb) < _DENORMAL_GUARD:
+                    eb = 0.0
+                dith[_u(wb)] = eb
+                word_b = np.int64(qb) << shift
+                y[n, b] = word_b
+                if wtap:
+                    yq[n, b] = word_b
+        # the chunk's errors into the circular history (a clear above already zeroed the rest)
+        for j in range(count):
+            slot = (hpos0 + j) & HIST_MASK
+            hist[a, slot] = dith[_u(wa0 + ntaps + j)]
+            hist[b, slot] = dith[_u(wb0 + ntaps + j)]
+    return (hpos0 + count) & HIST_MASK
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
@@ -409,130 +580,138 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
             counts[c, CNT_AM_MUTED] = 0
     tap = vq.shape[0] >= nframes
     wtap = yq.shape[0] >= nframes
-    # Unless this block continues the last one with the same seed, prime the
-    # ring with the blocks of the first frames (one earlier for tpdf-hp); the
-    # frame loop then computes each block RNG_LOOKAHEAD_BLOCKS ahead of its use.
     dithered = kind != DITHER_NONE
-    seed_tag = iparams[IP_SEED]
-    if dithered and nframes > 0 and not (rng_tag[RNG_TAG_FRAME] == frame0 and rng_tag[RNG_TAG_SEED] == seed_tag):
-        block0 = frame0 >> FRAMES_PER_BLOCK_SHIFT
-        for block in range(block0 - 1, block0 + RNG_LOOKAHEAD_BLOCKS + 1):
-            for c in range(nch):
-                _fill_block(seed, c, block, rng_words)
+    dith = rng_words.view(np.float64).reshape(-1)
 
-    for n in range(nframes):
-        if ramp_left > 0:
-            ramp_left -= 1
-            gain = target if ramp_left == 0 else gain + step
-        if eramp_left > 0:
-            eramp_left -= 1
-            egain = etarget if eramp_left == 0 else egain + estep
-        w0 = _toward(w0, ramp_frames if mode == MON_REQUANTIZED else 0)
-        w1 = _toward(w1, ramp_frames if mode == MON_ERROR else 0)
-        w2 = _toward(w2, ramp_frames if mode == MON_INPUT else 0)
-        mute_pos = _toward(mute_pos, mute_target)
-        # At rest in one mode, unmuted: the words come straight from q, the error or the input.
-        at_rest = mute_pos == 0 and ((mode == MON_REQUANTIZED and w0 == ramp_frames and w1 == 0 and w2 == 0)
-                                     or (mode == MON_ERROR and w1 == ramp_frames and w0 == 0 and w2 == 0)
-                                     or (mode == MON_INPUT and w2 == ramp_frames and w0 == 0 and w1 == 0))
-        index = frame0 + n
-        if dithered and (index & 3) == 0:
+    # The block runs in chunks of at most CHUNK_FRAMES frames: first the chunk's dither
+    # for every channel, then its frames, through the lean loop when nothing moves
+    # (constant gain, requantized words, no mute or auto-mute) and the general loop otherwise.
+    n_lo = 0
+    while n_lo < nframes:
+        n_hi = min(n_lo + CHUNK_FRAMES, nframes)
+        if dithered:
+            _fill_dither(kind, seed, nch, frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
+        at_rest_all = (ramp_left == 0 and eramp_left == 0 and mode == MON_REQUANTIZED and w0 == ramp_frames
+                       and w1 == 0 and w2 == 0 and mute_pos == 0 and mute_target == 0 and not auto_mute)
+        if at_rest_all:
             for c in range(nch):
-                _fill_block(seed, c, (index >> FRAMES_PER_BLOCK_SHIFT) + RNG_LOOKAHEAD_BLOCKS, rng_words)
-        for c in range(nch):
-            xv = np.float64(x[n, c])
-            exact_zero = xv == 0.0
-            if not math.isfinite(xv):
-                counts[c, CNT_NONFINITE] += 1
-                if math.isnan(xv):
-                    xv = 0.0
-                elif xv > 0.0:
-                    xv = 1.0
-                else:
-                    xv = -1.0
-                for k in range(HIST_LEN):
-                    hist[c, k] = 0.0
-            # Auto-mute: exact digital zero held for `hold` frames mutes the channel.  With
-            # auto-mute off (its counters cleared at the block start) only a ramp back in
-            # after switching it off needs work, so the common path touches no counter.
-            muted = False
-            am_pos = 0
-            if auto_mute:
-                if exact_zero:
-                    if counts[c, CNT_ZERO_RUN] < hold:
-                        counts[c, CNT_ZERO_RUN] += 1
-                else:
-                    counts[c, CNT_ZERO_RUN] = 0
-                muted = counts[c, CNT_ZERO_RUN] >= hold
-                if muted:
-                    if counts[c, CNT_AM_MUTED] == 0:
-                        for k in range(HIST_LEN):
-                            hist[c, k] = 0.0
-                    counts[c, CNT_AM_MUTED] = 1
-                    counts[c, CNT_AM_FRAMES] += 1
-                else:
-                    counts[c, CNT_AM_MUTED] = 0
-                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
-                counts[c, CNT_AM_POS] = am_pos
-            elif counts[c, CNT_AM_POS] != 0:
-                am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), 0)
-                counts[c, CNT_AM_POS] = am_pos
+                if counts[c, CNT_AM_POS] != 0:
+                    at_rest_all = False
+        if at_rest_all:
+            hpos = _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos, fparams, hist, counts, dith, dithered, ntaps,
+                              gain, scale, q_lo, q_hi, fb_peak, shift, tap, wtap)
+            n_lo = n_hi
+            continue
+        for n in range(n_lo, n_hi):
+            if ramp_left > 0:
+                ramp_left -= 1
+                gain = target if ramp_left == 0 else gain + step
+            if eramp_left > 0:
+                eramp_left -= 1
+                egain = etarget if eramp_left == 0 else egain + estep
+            w0 = _toward(w0, ramp_frames if mode == MON_REQUANTIZED else 0)
+            w1 = _toward(w1, ramp_frames if mode == MON_ERROR else 0)
+            w2 = _toward(w2, ramp_frames if mode == MON_INPUT else 0)
+            mute_pos = _toward(mute_pos, mute_target)
+            # At rest in one mode, unmuted: the words come straight from q, the error or the input.
+            at_rest = mute_pos == 0 and ((mode == MON_REQUANTIZED and w0 == ramp_frames and w1 == 0 and w2 == 0)
+                                         or (mode == MON_ERROR and w1 == ramp_frames and w0 == 0 and w2 == 0)
+                                         or (mode == MON_INPUT and w2 == ramp_frames and w0 == 0 and w1 == 0))
+            for c in range(nch):
+                xv = np.float64(x[n, c])
+                exact_zero = xv == 0.0
+                if not math.isfinite(xv):
+                    counts[c, CNT_NONFINITE] += 1
+                    if math.isnan(xv):
+                        xv = 0.0
+                    elif xv > 0.0:
+                        xv = 1.0
+                    else:
+                        xv = -1.0
+                    for k in range(HIST_LEN):
+                        hist[c, k] = 0.0
+                # Auto-mute: exact digital zero held for `hold` frames mutes the channel.  With
+                # auto-mute off (its counters cleared at the block start) only a ramp back in
+                # after switching it off needs work, so the common path touches no counter.
+                muted = False
+                am_pos = 0
+                if auto_mute:
+                    if exact_zero:
+                        if counts[c, CNT_ZERO_RUN] < hold:
+                            counts[c, CNT_ZERO_RUN] += 1
+                    else:
+                        counts[c, CNT_ZERO_RUN] = 0
+                    muted = counts[c, CNT_ZERO_RUN] >= hold
+                    if muted:
+                        if counts[c, CNT_AM_MUTED] == 0:
+                            for k in range(HIST_LEN):
+                                hist[c, k] = 0.0
+                        counts[c, CNT_AM_MUTED] = 1
+                        counts[c, CNT_AM_FRAMES] += 1
+                    else:
+                        counts[c, CNT_AM_MUTED] = 0
+                    am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), ramp_frames if muted else 0)
+                    counts[c, CNT_AM_POS] = am_pos
+                elif counts[c, CNT_AM_POS] != 0:
+                    am_pos = _toward(min(counts[c, CNT_AM_POS], ramp_frames), 0)
+                    counts[c, CNT_AM_POS] = am_pos
 
-            v = xv * gain
-            if tap:
-                vq[n, c] = v
-            v *= scale
-            u = v
-            if ntaps > 0:
-                fb = 0.0
-                for k in range(1, ntaps + 1):
-                    fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
-                u -= fb
-            d = 0.0
-            if dithered:
-                d = _dither(kind, c, index, rng_words) * dscale
-            q = np.floor(u + d + 0.5)
-            e = q - u
-            if q > q_hi or q < q_lo:
-                q = q_hi if q > q_hi else q_lo
-                counts[c, CNT_CLIPPED] += 1
+                v = xv * gain
+                if tap:
+                    vq[n, c] = v
+                v *= scale
+                u = v
+                if ntaps > 0:
+                    fb = fparams[FP_COEF0] * hist[c, (hpos - 1) & HIST_MASK]
+                    for k in range(2, ntaps + 1):
+                        fb += fparams[FP_COEF0 + k - 1] * hist[c, (hpos - k) & HIST_MASK]
+                    u -= fb
+                d = 0.0
+                if dithered:
+                    d = dith[c * DITHER_STRIDE + (n - n_lo)]
+                q = np.floor(u + d + 0.5)
                 e = q - u
-                if e > fb_peak:
-                    e = fb_peak
-                elif e < -fb_peak:
-                    e = -fb_peak
-            if abs(e) < _DENORMAL_GUARD or muted:
-                e = 0.0
-            hist[c, hpos] = e
-            word = np.int64(q) << shift
-            if wtap:
-                yq[n, c] = word
-            if at_rest and am_pos == 0:
-                if mode == MON_REQUANTIZED:
-                    y[n, c] = word
-                elif mode == MON_ERROR:
-                    ev = (q - v) * cscale * egain
-                    ev = min(max(ev, -e_ceil), e_ceil)
-                    y[n, c] = _round_clamp(ev, c_lo, c_hi)
+                if q > q_hi or q < q_lo:
+                    q = q_hi if q > q_hi else q_lo
+                    counts[c, CNT_CLIPPED] += 1
+                    e = q - u
+                    if e > fb_peak:
+                        e = fb_peak
+                    elif e < -fb_peak:
+                        e = -fb_peak
+                if abs(e) < _DENORMAL_GUARD or muted:
+                    e = 0.0
+                hist[c, hpos] = e
+                word = np.int64(q) << shift
+                if wtap:
+                    yq[n, c] = word
+                if at_rest and am_pos == 0:
+                    if mode == MON_REQUANTIZED:
+                        y[n, c] = word
+                    elif mode == MON_ERROR:
+                        ev = (q - v) * cscale * egain
+                        ev = min(max(ev, -e_ceil), e_ceil)
+                        y[n, c] = _round_clamp(ev, c_lo, c_hi)
+                    else:
+                        y[n, c] = _round_clamp(v * cscale, c_lo, c_hi)
                 else:
-                    y[n, c] = _round_clamp(v * cscale, c_lo, c_hi)
-            else:
-                acc = 0.0
-                if w0 > 0:
-                    acc += w0 * (q * cscale)
-                if w1 > 0:
-                    ev = (q - v) * cscale * egain
-                    acc += w1 * min(max(ev, -e_ceil), e_ceil)
-                if w2 > 0:
-                    acc += w2 * (v * cscale)
-                acc *= inv_frames * ((ramp_frames - mute_pos) * inv_frames) * ((ramp_frames - am_pos) * inv_frames)
-                y[n, c] = _round_clamp(acc, c_lo, c_hi)
-        hpos = (hpos + 1) & HIST_MASK
+                    acc = 0.0
+                    if w0 > 0:
+                        acc += w0 * (q * cscale)
+                    if w1 > 0:
+                        ev = (q - v) * cscale * egain
+                        acc += w1 * min(max(ev, -e_ceil), e_ceil)
+                    if w2 > 0:
+                        acc += w2 * (v * cscale)
+                    acc *= inv_frames * ((ramp_frames - mute_pos) * inv_frames) * ((ramp_frames - am_pos) * inv_frames)
+                    y[n, c] = _round_clamp(acc, c_lo, c_hi)
+            hpos = (hpos + 1) & HIST_MASK
+        n_lo = n_hi
 
     if nframes > 0:
-        # Frames without dither fill nothing, so the ring no longer follows the clock.
+        # The ring holds the blocks of the last chunk (a cache: nothing depends on it).
         rng_tag[RNG_TAG_FRAME] = frame0 + nframes if dithered else -1
-        rng_tag[RNG_TAG_SEED] = seed_tag
+        rng_tag[RNG_TAG_SEED] = iparams[IP_SEED]
     clock[CLK_FRAME] = frame0 + nframes
     clock[CLK_HPOS] = hpos
     clock[CLK_RAMP_LEFT] = ramp_left

@@ -63,9 +63,14 @@ BENCH_SEED = 1
 PROGRAM_SEED = 20240607
 """Seed of the generated test programme (not the dither seed)."""
 
-GOAL_KERNEL_SPEEDUP = 2.0
-GOAL_RENDER_RATIO = 1.3
-GOAL_WARM_START_S = 1.0
+GOAL_KERNEL_SPEEDUP = 4.0
+"""Kernel throughput against the plain C loop built with ``gcc -O3``."""
+GOAL_KERNEL_SPEEDUP_NATIVE = 2.5
+"""Kernel throughput against the same C built with ``-march=native``."""
+GOAL_RENDER_RATIO = 1.5
+GOAL_PIPE_RATIO = 0.9
+"""``rtstage pipe`` throughput as a fraction of ``rtstage render``'s on the same material."""
+GOAL_WARM_START_S = 0.5
 
 C_BUILDS = (
     # (label, extra gcc flags, counts for the goal)
@@ -218,30 +223,38 @@ def load_kernel_module(path):
     return module, os.path.relpath(path, REPO_DIR)
 
 
-def bench_kernel(seconds, reps, kernel_path=None):
-    """Kernel against the plain C builds on ``seconds`` of generated stereo audio."""
-    KM, kernel_name = load_kernel_module(kernel_path)
-    nframes = int(round(seconds * BENCH_SAMPLERATE))
-    nsamples = nframes * BENCH_CHANNELS
-    settings = EngineSettings(bits=BENCH_BITS, dither=BENCH_DITHER, shaper=BENCH_SHAPER, seed=BENCH_SEED).resolved()
-    st = KM.KernelState(BENCH_CHANNELS)
-    encode_params(settings, BENCH_SAMPLERATE, 16 - BENCH_BITS, st.iparams, st.fparams)
-    st.reset(0)
-    x = make_programme(nframes, BENCH_SAMPLERATE)
-    y_kernel = np.zeros((nframes, BENCH_CHANNELS), dtype=np.int16)
+def kernel_at_revision(rev):
+    """Write ``rtstage/kernel.py`` as of git revision ``rev`` into ``tools/build/`` and return its path.
 
-    def run_kernel():
-        st.reset(0)
-        KM.process_block(x, y_kernel, np.empty((0, x.shape[1])), nframes, *st.arrays())
+    Its relative imports become absolute (``from rtstage._philox``), so that
+    it runs against today's generator; it is measured beside today's kernel
+    in the same run (the before/after table) and its words are compared.
+    """
+    text = subprocess.run(["git", "show", f"{rev}:rtstage/kernel.py"], cwd=REPO_DIR, check=True, capture_output=True,
+                          text=True).stdout  # fmt: skip
+    text = text.replace("from ._philox import", "from rtstage._philox import").replace("from .", "from rtstage.")
+    sha = subprocess.run(["git", "rev-parse", "--short", rev], cwd=REPO_DIR, check=True, capture_output=True,
+                         text=True).stdout.strip()  # fmt: skip
+    os.makedirs(BUILD_DIR, exist_ok=True)
+    path = os.path.join(BUILD_DIR, f"kernel_at_{sha}.py")
+    if not os.path.exists(path) or open(path).read() != text:
+        with open(path, "w") as f:
+            f.write(text)
+    return path
 
-    log(f"kernel: {seconds:g} s of stereo audio ({nsamples} samples), best of {reps}, interleaved")
-    t0 = time.perf_counter()
-    run_kernel()  # compiles, or loads the numba cache
-    first_call_s = time.perf_counter() - t0
-    kernel_clipped = st.counts[:, K.CNT_CLIPPED].copy()
 
-    contenders = [("kernel", run_kernel)]
-    c_entries = []
+def programme_channels(nframes, nchannels):
+    """The stereo programme spread over ``nchannels`` channels (each a little quieter than the last pair)."""
+    stereo = make_programme(nframes, BENCH_SAMPLERATE)
+    x = np.empty((nframes, nchannels), dtype=np.float64)
+    for c in range(nchannels):
+        x[:, c] = stereo[:, c % 2] * (1.0 - 0.01 * (c // 2))
+    return x
+
+
+def _c_builds():
+    """[(label, fn, cmdline, for_goal)] of the C baselines that build here."""
+    builds = []
     for label, flags, for_goal in C_BUILDS:
         tag = "o3" if not flags else "o3_" + "_".join(f.strip("-").replace("=", "") for f in flags)
         try:
@@ -249,49 +262,132 @@ def bench_kernel(seconds, reps, kernel_path=None):
         except (OSError, subprocess.CalledProcessError) as exc:
             log(f"cannot build {label}: {exc}")
             continue
-        plain = PlainC(fn, settings, BENCH_CHANNELS, st.iparams, st.fparams)
-        y_c = np.full((nframes, BENCH_CHANNELS), 0x5A5A, dtype=np.int16)
+        builds.append((label, fn, cmdline, for_goal))
+    return builds
+
+
+def compare_kernels(kernels, x, shaper, reps, c_builds):
+    """Time ``kernels`` (name -> module) and the C builds on ``x``; check every output against the first kernel's.
+
+    Returns ``{"kernels": {name: entry}, "c": [entry], "identical_all": bool}``; an entry holds
+    the timing summary only when its words (and clip counts) equal the reference kernel's.
+    """
+    nframes, nch = x.shape
+    settings = EngineSettings(bits=BENCH_BITS, dither=BENCH_DITHER, shaper=shaper, seed=BENCH_SEED).resolved()
+    contenders = []
+    outputs = {}
+    states = {}
+    for name, KM in kernels.items():
+        st = KM.KernelState(nch)
+        encode_params(settings, BENCH_SAMPLERATE, 16 - BENCH_BITS, st.iparams, st.fparams)
+        st.reset(0)
+        y = np.full((nframes, nch), 0x5A5A, dtype=np.int16)
+        no_tap = np.empty((0, nch))
+
+        def run(KM=KM, st=st, y=y, no_tap=no_tap):
+            st.reset(0)
+            KM.process_block(x, y, no_tap, nframes, *st.arrays())
+
+        run()  # compiles, or loads the numba cache
+        outputs[name] = (y, st.counts[:, K.CNT_CLIPPED].copy())
+        states[name] = st
+        contenders.append((name, run, True))
+    ref_name = next(iter(kernels))
+    ref_y, ref_clipped = outputs[ref_name]
+    c_entries = []
+    for label, fn, cmdline, for_goal in c_builds:
+        st = states[ref_name]
+        plain = PlainC(fn, settings, nch, st.iparams, st.fparams)
+        y_c = np.full((nframes, nch), 0x5A5A, dtype=np.int16)
 
         def run_c(plain=plain, y_c=y_c):
             plain.reset()
             plain.process(x, y_c)
 
         run_c()
-        mismatched = int(np.count_nonzero(y_c != y_kernel))
-        c_entries.append(
-            {
-                "label": label,
-                "build": cmdline,
-                "for_goal": for_goal,
-                "identical": mismatched == 0 and np.array_equal(plain.clipped, kernel_clipped),
-                "mismatched_words": mismatched,
-                "clipped": plain.clipped.tolist(),
-            }
-        )
-        contenders.append((label, run_c))
+        outputs[label] = (y_c, plain.clipped.copy())
+        c_entries.append({"label": label, "build": cmdline, "for_goal": for_goal})
+        contenders.append((label, run_c, False))
+    identical = {}
+    for name, (y, clipped) in outputs.items():
+        mismatched = int(np.count_nonzero(y != ref_y))
+        identical[name] = (mismatched == 0 and np.array_equal(clipped, ref_clipped), mismatched)
     # Interleave the contenders in every repetition, so that a burst of load
     # from other processes hits all of them alike; keep each one's best.
-    times = {name: [] for name, _ in contenders}
+    times = {name: [] for name, _, _ in contenders}
     for _ in range(reps):
-        for name, fn in contenders:
+        for name, fn, _ in contenders:
             t0 = time.perf_counter()
             fn()
             times[name].append(time.perf_counter() - t0)
-    result = {
-        "frames": nframes,
-        "channels": BENCH_CHANNELS,
-        "samples": nsamples,
-        "setting": f"{BENCH_BITS} bits, {BENCH_DITHER}, {BENCH_SHAPER}, seed {BENCH_SEED}, float64 in, int16 out",
-        "kernel": {**summary(times["kernel"]), "module": kernel_name, "first_call_s": first_call_s,
-                   "clipped": kernel_clipped.tolist()},  # fmt: skip
-        "c": c_entries,
-    }
-    result["kernel"]["samples_per_s"] = nsamples / result["kernel"]["best_s"]
+    nsamples = nframes * nch
+    kernel_entries = {}
+    for name in kernels:
+        same, mismatched = identical[name]
+        entry = {"identical": same, "mismatched_words": mismatched, "clipped": outputs[name][1].tolist()}
+        if same:  # a speed is printed only for outputs equal word for word
+            entry.update(summary(times[name]))
+            entry["samples_per_s"] = nsamples / entry["best_s"]
+        kernel_entries[name] = entry
+    ref_best = kernel_entries[ref_name]["best_s"]
+    for name, entry in kernel_entries.items():
+        if "best_s" in entry:
+            entry["speedup_vs_first"] = entry["best_s"] / ref_best
     for entry in c_entries:
-        entry.update(summary(times[entry["label"]]))
-        entry["samples_per_s"] = nsamples / entry["best_s"]
-        entry["kernel_speedup"] = entry["best_s"] / result["kernel"]["best_s"]
+        same, mismatched = identical[entry["label"]]
+        entry.update({"identical": same, "mismatched_words": mismatched, "clipped": outputs[entry["label"]][1].tolist()})
+        if same:
+            entry.update(summary(times[entry["label"]]))
+            entry["samples_per_s"] = nsamples / entry["best_s"]
+            entry["kernel_speedup"] = entry["best_s"] / ref_best
+    return {"frames": nframes, "channels": nch, "samples": nsamples, "shaper": shaper, "kernels": kernel_entries,
+            "c": c_entries, "identical_all": all(v[0] for v in identical.values())}
+
+
+def bench_kernel(seconds, reps, kernel_path=None, before_rev=None):
+    """Kernel against the plain C builds (and the kernel at ``before_rev``) on ``seconds`` of stereo audio."""
+    KM, kernel_name = load_kernel_module(kernel_path)
+    kernels = {kernel_name: KM}
+    if before_rev:
+        path = kernel_at_revision(before_rev)
+        BM, _ = load_kernel_module(path)
+        kernels[f"kernel at {before_rev}"] = BM
+    nframes = int(round(seconds * BENCH_SAMPLERATE))
+    x = make_programme(nframes, BENCH_SAMPLERATE)
+    log(f"kernel: {seconds:g} s of stereo audio ({nframes * BENCH_CHANNELS} samples), best of {reps}, interleaved")
+    t0 = time.perf_counter()
+    KM.process_block(x[:64], np.zeros((64, 2), np.int16), np.empty((0, 2)), 64, *KM.KernelState(2).arrays())
+    first_call_s = time.perf_counter() - t0
+    result = compare_kernels(kernels, x, BENCH_SHAPER, reps, _c_builds())
+    result["setting"] = f"{BENCH_BITS} bits, {BENCH_DITHER}, {BENCH_SHAPER}, seed {BENCH_SEED}, float64 in, int16 out"
+    result["kernel_name"] = kernel_name
+    result["first_call_s"] = first_call_s
     return result
+
+
+MATRIX_CHANNELS = (1, 2, 8, 64)
+MATRIX_SHAPERS = (("flat", 0), ("diff2", 2), (BENCH_SHAPER, 9), ("thr24-48k", 24))
+
+
+def bench_matrix(seconds, reps, kernel_path=None, before_rev=None):
+    """The kernel for 1, 2, 8, 64 channels (9 taps) and 0, 2, 9, 24 taps (stereo), each against the C builds."""
+    KM, kernel_name = load_kernel_module(kernel_path)
+    kernels = {kernel_name: KM}
+    if before_rev:
+        BM, _ = load_kernel_module(kernel_at_revision(before_rev))
+        kernels[f"kernel at {before_rev}"] = BM
+    builds = _c_builds()
+    nframes = int(round(seconds * BENCH_SAMPLERATE))
+    rows = []
+    cases = [(nch, BENCH_SHAPER, 9) for nch in MATRIX_CHANNELS]
+    cases += [(2, shaper, ntaps) for shaper, ntaps in MATRIX_SHAPERS if ntaps != 9]
+    for nch, shaper, ntaps in cases:
+        log(f"matrix: {nch} ch, {ntaps} taps ({shaper}), {seconds:g} s, best of {reps}")
+        x = programme_channels(nframes, nch)
+        r = compare_kernels(kernels, x, shaper, reps, builds)
+        r["ntaps"] = ntaps
+        rows.append(r)
+    return {"kernel_name": kernel_name, "seconds": seconds, "rows": rows}
 
 
 # --------------------------------------------------------------------------------------
@@ -491,19 +587,24 @@ def verdict(ok):
 
 
 def goals(results):
-    """The three goals as (name, measured, goal text, ok)."""
+    """The goals as (name, measured, goal text, ok)."""
     rows = []
     kr = results.get("kernel")
     if kr:
         for c in kr["c"]:
-            if c["for_goal"]:
-                ok = c["identical"] and c["kernel_speedup"] >= GOAL_KERNEL_SPEEDUP
-                rows.append(("kernel vs plain C (" + c["label"] + ")", f"{c['kernel_speedup']:.2f}x",
-                             f">= {GOAL_KERNEL_SPEEDUP:g}x, bit-identical", ok))  # fmt: skip
+            goal = GOAL_KERNEL_SPEEDUP if c["for_goal"] else GOAL_KERNEL_SPEEDUP_NATIVE
+            if not c["identical"]:
+                rows.append(("kernel vs plain C (" + c["label"] + ")", "DIFFERENT", f">= {goal:g}x, bit-identical", False))
+                continue
+            rows.append(("kernel vs plain C (" + c["label"] + ")", f"{c['kernel_speedup']:.2f}x",
+                         f">= {goal:g}x, bit-identical", c["kernel_speedup"] >= goal))  # fmt: skip
     rr = results.get("render")
     if rr and "error" not in rr:
         ok = rr["cli_ratio"] <= GOAL_RENDER_RATIO
         rows.append(("rtstage render vs pure I/O", f"{rr['cli_ratio']:.2f}x", f"<= {GOAL_RENDER_RATIO:g}x", ok))
+        if "pipe" in rr:
+            rows.append(("rtstage pipe vs render throughput", f"{rr['pipe_throughput_ratio']:.2f}x",
+                         f">= {GOAL_PIPE_RATIO:g}x", rr["pipe_throughput_ratio"] >= GOAL_PIPE_RATIO))  # fmt: skip
     elif rr:
         rows.append(("rtstage render vs pure I/O", "n/a", f"<= {GOAL_RENDER_RATIO:g}x", False))
     wr = results.get("warm")
@@ -519,6 +620,27 @@ def _t(s):
     return f"{s['best_s'] * 1e3:9.1f} ms  (median {s['median_s'] * 1e3:.1f}, spread {100 * s['spread']:.0f}%)"
 
 
+def _print_comparison(w, r, indent):
+    """Kernel(s) and C builds of one :func:`compare_kernels` result; no speed for an output that differs."""
+    for name, k in r["kernels"].items():
+        if "best_s" in k:
+            extra = "" if k["speedup_vs_first"] == 1.0 else f"  (first kernel {k['speedup_vs_first']:.2f}x this)"
+            w(f"{indent}{'kernel: ' + name:34s} {_t(k)}  {k['samples_per_s'] / 1e6:7.1f} Msamples/s{extra}\n")
+        else:
+            w(f"{indent}{'kernel: ' + name:34s} DIFFERENT words ({k['mismatched_words']}): no speed printed\n")
+    for c in r["c"]:
+        if "best_s" in c:
+            w(f"{indent}{'plain C, ' + c['label']:34s} {_t(c)}  {c['samples_per_s'] / 1e6:7.1f} Msamples/s"
+              f"  -> kernel {c['kernel_speedup']:.2f}x\n")  # fmt: skip
+        else:
+            w(f"{indent}{'plain C, ' + c['label']:34s} DIFFERENT words ({c['mismatched_words']}): no speed printed\n")
+    first = next(iter(r["kernels"]))
+    for name in list(r["kernels"])[1:] + [c["label"] for c in r["c"]]:
+        entry = r["kernels"].get(name) or next(c for c in r["c"] if c["label"] == name)
+        same = "IDENTICAL" if entry["identical"] else f"DIFFERENT ({entry['mismatched_words']} words differ)"
+        w(f"{indent}check: {name} output vs {first} output, {r['samples']} words: {same}\n")
+
+
 def print_table(results, out=sys.stdout):
     """Human-readable report."""
     w = out.write
@@ -528,15 +650,35 @@ def print_table(results, out=sys.stdout):
     kr = results.get("kernel")
     if kr:
         w(f"1. kernel throughput: {kr['samples']} samples ({kr['frames']} frames x {kr['channels']} ch), {kr['setting']}\n")
-        k = kr["kernel"]
-        w(f"   {'kernel: ' + k['module']:34s} {_t(k)}  {k['samples_per_s'] / 1e6:7.1f} Msamples/s\n")
-        for c in kr["c"]:
-            w(f"   {'plain C, ' + c['label']:34s} {_t(c)}  {c['samples_per_s'] / 1e6:7.1f} Msamples/s"
-              f"  -> kernel {c['kernel_speedup']:.2f}x\n")  # fmt: skip
-        for c in kr["c"]:
-            same = "IDENTICAL" if c["identical"] else f"DIFFERENT ({c['mismatched_words']} words differ)"
-            w(f"   check: plain C ({c['label']}) output vs kernel output, {kr['samples']} words: {same}\n")
-        w(f"   (kernel first call, compile or cache load: {k['first_call_s']:.2f} s)\n\n")
+        _print_comparison(w, kr, "   ")
+        w(f"   (kernel first call, compile or cache load: {kr['first_call_s']:.2f} s)\n\n")
+    mr = results.get("matrix")
+    if mr:
+        w(f"1b. kernel by channel count and taps ({mr['seconds']:g} s of audio per case, 16 bits, tpdf):\n")
+        names = list(mr["rows"][0]["kernels"])
+        head = "".join(f"{n[:22]:>24s}" for n in names)
+        w(f"   {'ch':>3s} {'taps':>4s}{head}{'C -O3':>12s}{'C native':>12s}  kernel/C-O3  kernel/C-native\n")
+        for r in mr["rows"]:
+            cells = ""
+            for n in names:
+                e = r["kernels"][n]
+                cells += f"{e['samples_per_s'] / 1e6:17.1f} Ms/s" if "samples_per_s" in e else f"{'DIFFERENT':>24s}"
+            cs = {c["label"]: c for c in r["c"]}
+            line = f"   {r['channels']:3d} {r['ntaps']:4d}{cells}"
+            ratios = ""
+            for label, _, _ in C_BUILDS:
+                c = cs.get(label)
+                if c is None:
+                    line += f"{'-':>12s}"
+                    ratios += f"{'-':>13s}"
+                elif "samples_per_s" not in c:
+                    line += f"{'DIFFERENT':>12s}"
+                    ratios += f"{'-':>13s}"
+                else:
+                    line += f"{c['samples_per_s'] / 1e6:7.1f} Ms/s"
+                    ratios += f"{c['kernel_speedup']:12.2f}x"
+            w(line + ratios + "\n")
+        w("   (Ms/s = million samples per second, best of N; every output checked word for word against the first kernel)\n\n")
     rr = results.get("render")
     if rr and "error" in rr:
         w(f"2. end-to-end render: not measured: {rr['error']}\n\n")
@@ -593,11 +735,16 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description="Benchmark rtstage's core engine against plain C and pure I/O.")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of the table")
     parser.add_argument("--reps", type=int, default=9, help="timed repetitions per measurement (best is kept)")
-    parser.add_argument("--kernel-seconds", type=float, default=10.0, help="seconds of audio per kernel run")
+    parser.add_argument("--kernel-seconds", type=float, default=0.5,
+                        help="seconds of audio per kernel run (short runs fit in one time slice of a loaded machine)")
+    parser.add_argument("--kernel-reps", type=int, default=41, help="timed repetitions of each kernel case")
     parser.add_argument("--render-minutes", type=float, default=10.0, help="length of the render test file")
     parser.add_argument("--render-reps", type=int, default=3, help="timed repetitions of the render comparison")
     parser.add_argument("--kernel-from", metavar="PATH", help="measure a private kernel copy (a .py file) instead of rtstage.kernel")
+    parser.add_argument("--before", metavar="REV", help="also measure rtstage/kernel.py as of git revision REV (before/after in one run)")
+    parser.add_argument("--matrix-seconds", type=float, default=0.2, help="seconds of audio per channel/taps case")
     parser.add_argument("--skip-kernel", action="store_true")
+    parser.add_argument("--skip-matrix", action="store_true")
     parser.add_argument("--skip-render", action="store_true")
     parser.add_argument("--skip-warm", action="store_true")
     args = parser.parse_args(argv)
@@ -606,7 +753,9 @@ def main(argv=None):
     os.makedirs(BUILD_DIR, exist_ok=True)
     results = {"machine": machine_info()}
     if not args.skip_kernel:
-        results["kernel"] = bench_kernel(args.kernel_seconds, args.reps, args.kernel_from)
+        results["kernel"] = bench_kernel(args.kernel_seconds, args.kernel_reps, args.kernel_from, args.before)
+    if not args.skip_matrix:
+        results["matrix"] = bench_matrix(args.matrix_seconds, args.kernel_reps, args.kernel_from, args.before)
     if not args.skip_render:
         try:
             results["render"] = bench_render(args.render_minutes, args.render_reps)
