@@ -219,6 +219,15 @@ def test_hard_clipping(words):
     assert [c["word_errors"] for c in report["channels"]] == counts
 
 
+def test_a_bit_stuck_at_zero(words):
+    # Reference: numpy clears bit 3 of every word (a broken data line): the words keep their top 20 bits
+    # unchanged, and the change is none of truncation, rounding or dither.
+    capture = (words.astype(np.int64) & ~np.int64(1 << 3)).astype(np.float64)
+    report = _analyse(capture)
+    check(report, {"requantization": "other", "bits_passed": 20})
+    assert [c["word_errors"] for c in report["channels"]] == word_errors(capture, words)
+
+
 def test_not_found(words):
     # Noise from numpy's generator, and the sequence of another seed, hold no marker of this seed.
     rng = np.random.default_rng(9)
