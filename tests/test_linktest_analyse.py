@@ -287,3 +287,16 @@ def test_a_16_bit_sequence(tmp_path):
     report = analyse(sf.read(short, dtype="float64", always_2d=True)[0], rate, 16, bits=16)
     assert [(c["requantization"], c["bits_passed"], c["gain_db"], c["slips"]) for c in report["channels"]] == \
         [("dithered", 12, 0.0, [])] * 2
+
+
+def test_a_dead_channel(words):
+    # Reference: numpy silences channel 2; channel 1 still passes, channel 2 carries nothing.
+    capture = words.copy()
+    capture[:, 1] = 0
+    report = _analyse(capture)
+    assert report["found"] is True and report["transparent"] is False
+    assert report["channels"][0]["transparent"] is True
+    dead = report["channels"][1]
+    assert dead["source_channel"] is None and dead["transparent"] is False and dead["bits_passed"] == 0
+    assert "channel 2: no link test marker" in "\n".join(report["summary"])
+    assert "sequence channel 2 did not arrive" in report["summary"]
