@@ -219,6 +219,15 @@ def test_hard_clipping(words):
     assert [c["word_errors"] for c in report["channels"]] == counts
 
 
+def test_a_bit_stuck_at_zero(words):
+    # Reference: numpy clears bit 3 of every word (a broken data line): the words keep their top 20 bits
+    # unchanged, and the change is none of truncation, rounding or dither.
+    capture = (words.astype(np.int64) & ~np.int64(1 << 3)).astype(np.float64)
+    report = _analyse(capture)
+    check(report, {"requantization": "other", "bits_passed": 20})
+    assert [c["word_errors"] for c in report["channels"]] == word_errors(capture, words)
+
+
 def test_not_found(words):
     # Noise from numpy's generator, and the sequence of another seed, hold no marker of this seed.
     rng = np.random.default_rng(9)
@@ -278,3 +287,16 @@ def test_a_16_bit_sequence(tmp_path):
     report = analyse(sf.read(short, dtype="float64", always_2d=True)[0], rate, 16, bits=16)
     assert [(c["requantization"], c["bits_passed"], c["gain_db"], c["slips"]) for c in report["channels"]] == \
         [("dithered", 12, 0.0, [])] * 2
+
+
+def test_a_dead_channel(words):
+    # Reference: numpy silences channel 2; channel 1 still passes, channel 2 carries nothing.
+    capture = words.copy()
+    capture[:, 1] = 0
+    report = _analyse(capture)
+    assert report["found"] is True and report["transparent"] is False
+    assert report["channels"][0]["transparent"] is True
+    dead = report["channels"][1]
+    assert dead["source_channel"] is None and dead["transparent"] is False and dead["bits_passed"] == 0
+    assert "channel 2: no link test marker" in "\n".join(report["summary"])
+    assert "sequence channel 2 did not arrive" in report["summary"]

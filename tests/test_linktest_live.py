@@ -100,11 +100,13 @@ def _finish(proc, tmp_path):
     return proc.returncode, out, open(tmp_path / "linktest.err").read()
 
 
-def test_direct_connection_is_transparent(server, tmp_path):
+@pytest.mark.parametrize("bits", [24, 16])
+def test_direct_connection_is_transparent(server, tmp_path, bits):
+    # 24-bit words go out as left-justified int32, 16-bit words as int16.
     wiring = Wiring(server)
     try:
         known = wiring.clients() | {"linktest-wiring"}
-        proc, report_path = _linktest(server, tmp_path)
+        proc, report_path = _linktest(server, tmp_path, "--bits", str(bits))
         me = wiring.wait_new_client(known, proc=proc, err_path=tmp_path / "linktest.err")
         wiring.isolate(me)
         wiring.route(me, me)  # its own outputs straight into its own inputs
@@ -118,7 +120,7 @@ def test_direct_connection_is_transparent(server, tmp_path):
     expected = round(sum(report["stream"]["stream_latency_s"]) * SR)
     assert report["latency_frames"] == expected
     for i, ch in enumerate(report["channels"]):
-        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"], ch["word_errors"]) == (i, 24, "none", 0)
+        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"], ch["word_errors"]) == (i, bits, "none", 0)
     assert "caution" in err
 
 

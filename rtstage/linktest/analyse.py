@@ -42,8 +42,10 @@ channel:
 
    ``bits_passed`` is the word length the path carries: N for ``none``, the
    capture's word length for ``truncation``, ``rounding`` and ``dithered``,
-   and for ``other`` the longest length whose LSB still bounds the error
-   (0 when the path resamples: no word arrives as a word).
+   and for ``other`` the longest length whose top bits arrived unchanged in
+   every word (for words that are not integers, the longest length whose LSB
+   still bounds the error; 0 when the path resamples: no word arrives as a
+   word).
 
 The statistics are textbook ones: truncation error uniform on (-q, 0] with
 mean -q/2; rounding error on (-q/2, q/2], a deterministic function of the
@@ -511,6 +513,15 @@ def _classify(e, ref, step, grid_bits, bits):
     sd = float(np.std(e))
     if not deterministic and step > 1 and abs(mean) <= 4 * sd / math.sqrt(e.size) + 0.02 * q and sd <= DITHER_MAX_RMS_STEPS * q:
         return "dithered", grid_bits
+    if integer_ref and np.max(np.abs(c - np.round(c))) <= 1e-9:
+        # Integer words: the longest length whose top bits arrived unchanged in every word.
+        ci, ri = np.round(c).astype(np.int64), np.round(ref).astype(np.int64)
+        passed = 0
+        for n in range(grid_bits, 0, -1):
+            if np.array_equal(ci >> (bits - n), ri >> (bits - n)):
+                passed = n
+                break
+        return "other", passed
     passed = bits - int(math.ceil(math.log2(peak))) if peak >= 1 else bits
     return "other", max(0, min(grid_bits, passed))
 
