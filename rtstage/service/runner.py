@@ -117,14 +117,16 @@ def configure_engine(engine, args):
     """Before ``engine.prepare()``: make the engine write its tap in segments when asked."""
     if not rotation_wanted(args):
         return
-    from .rotate import RotatingTapWriter, new_run_id
+    from .rotate import BoundarySnapshots, RotatingTapWriter, new_run_id
 
     holder = {"run_id": new_run_id()}
 
     def factory(path, block, samplerate, bits, info=None):
         frames = segment_frames(args, samplerate, block.nchannels, bits)
+        snapshots = BoundarySnapshots(block, engine.blocksize, samplerate, frames)
         writer = RotatingTapWriter(path, block, samplerate, bits, info, segment_frames=frames, keep=args.tap_keep,
-                                   run_id=holder["run_id"], on_segment=lambda start: holder.get("log") and holder["log"].advance(start))
+                                   run_id=holder["run_id"], snapshots=snapshots, log=lambda: holder.get("log"),
+                                   on_segment=lambda start: holder.get("log") and holder["log"].advance(start))
         holder["writer"] = writer
         return writer
 
