@@ -153,6 +153,9 @@ def test_metrics_and_osc_against_status_meters_and_rerender(jack_server, tmp_pat
                 assert m[("rtstage_true_peak_dbtp", (ch,))] == rep["true_peak_dbtp"]
                 if rep["noise_modulation_db"] is not None:
                     assert m[("rtstage_noise_modulation_db", (ch,))] == rep["noise_modulation_db"]
+            loud = meters["loudness"]
+            assert loud["momentary_lufs"] is not None  # 400 ms blocks exist after a second of audio
+            assert m[("rtstage_loudness_lufs", (("kind", "momentary"),))] == loud["momentary_lufs"]
 
             # OSC: a control surface subscribes, sets the word length, asks it back
             surface = SimpleUDPClient("127.0.0.1", oport)

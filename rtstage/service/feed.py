@@ -142,6 +142,10 @@ SCHEMA = {
         **{name: (_param(name), name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale")
                   else None, params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
     },
+    "meters": {
+        "loudness_target": (_str, "loudness_target", "loudness target the output is checked against: ebu-r128, "
+                            "or LUFS[:TOLERANCE_LU[:TRUE_PEAK_DBTP]]"),
+    },
     "tap": {
         "path": (_str, "tap", "tap file (with rotation: the first segment's name pattern, see docs/service.md)"),
         "rotate_s": (_float(0.0, lo_open=True), "tap_rotate_s", "start a new segment after this many seconds of audio"),
@@ -389,6 +393,9 @@ preset = "link16"                # presets/link16.toml; the keys below override 
 # seed = 12345                   # fixed seed: taps re-render from the source alone
 # auto_mute = true               # mute a channel whose input is exact digital zero
 # auto_mute_hold_s = 2.0
+
+[meters]
+loudness_target = "ebu-r128"     # pass/fail of the output's loudness (status, metrics)
 
 [tap]
 path = "/var/lib/rtstage/link-a/tap.wav"   # the exact words sent to the device

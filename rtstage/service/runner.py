@@ -329,6 +329,7 @@ class ServiceWiring:
             "meter_dropped_frames": eng.block.counter(S.C_MRING_DROPPED),
             "watchdog_pings": hb.pings if hb else 0, "watchdog_missed": hb.missed if hb else 0,
             "meter_frames": (meters or {}).get("frames"),
+            "loudness": (meters or {}).get("loudness"),
             "channels": channels,
             "threads": threads,
         }
