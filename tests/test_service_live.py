@@ -222,6 +222,7 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     assert "feed reload: audio.blocksize changed (256 -> 512): needs a restart; not applied" in err
     status = json.load(open(st))
     assert status["reloads"] == 1 and status["feed"] == "link-test" and status["blocksize"] == 256
+    assert status["restarts"] == 0 and status["discontinuities"] == 0  # the reload left no gap
     segments = list_segments(tap)
     logs = list_segments(log_path)
     assert len(segments) >= 4 and [k for k, _ in logs] == [k for k, _ in segments]
