@@ -20,7 +20,7 @@ def register(subparsers):
     unit = sub.add_parser("unit", help="print the template systemd unit (install as NAME@.service)")
     unit.add_argument("name", nargs="?", default="rtstage", help="unit name without @.service (default rtstage)")
     unit.add_argument("--feed-dir", default="/etc/rtstage", help="directory of the feed files (default /etc/rtstage)")
-    unit.add_argument("--exec", dest="command", help="command that runs rtstage (default: this Python with -m rtstage)")
+    unit.add_argument("--exec", dest="exec_command", help="command that runs rtstage (default: this Python with -m rtstage)")
     unit.set_defaults(handler=unit_command)
     feed.set_defaults(handler=lambda args: (feed.print_help(sys.stderr), 2)[1])
 
@@ -106,5 +106,5 @@ def unit_command(args):
     """Handler of ``rtstage feed unit``."""
     from ..service.feed import unit_text
 
-    sys.stdout.write(unit_text(args.name, args.command, args.feed_dir))
+    sys.stdout.write(unit_text(args.name, args.exec_command, args.feed_dir))
     return 0
