@@ -197,7 +197,7 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     tap, log_path, st = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json"))
     feed_path = tmp_path / "link.toml"
     text = (f'[feed]\nname = "link-test"\n[audio]\nsource = "{source}"\nsamplerate = {SR}\nblocksize = 256\n'
-            f'[engine]\nbits = 16\ndither = "tpdf"\nshaper = "lvw-me9"\nseed = 555\n'
+            f'[engine]\npreset = "link16"\nbits = 16\nseed = 555\n'
             f'[tap]\npath = "{tap}"\nrotate_s = 0.5\n[automation_log]\npath = "{log_path}"\n[control]\nport = 0\n')
     feed_path.write_text(text)
     manager = Manager()
@@ -233,7 +233,8 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     changes = [(f, v) for _, name in logs for f, v in load_automation(name, SR)[1:]]
     assert len(changes) == 1 and changes[0][1] == {"bits": 12} and changes[0][0] % 256 == 0
     # concatenated segments: the unrotated render, nothing lost or duplicated at a boundary
-    base = EngineSettings(bits=16, dither="tpdf", shaper="lvw-me9", seed=555)  # error feedback: history matters
+    # presets/link16.toml: TPDF with the gentle9 family, whose 48 kHz design has error feedback (history matters)
+    base = EngineSettings(bits=16, dither="tpdf", shaper="gentle9-48k", seed=555)
     assert_array_equal(whole, rerender(base, source, 0, whole.shape[0], changes))
     # each segment alone, from the source, its sidecar's kernel state and its own log segment
     for ((_, start), name), part, (_, log_name) in zip(segments, parts, logs):

@@ -53,6 +53,8 @@ def resolve(path):
                 out[f"{section}.{key}"] = (feed.values[section][key], "feed")
     seed_given = args.seed is not None
     settings = settings_with_feed(settings_from_args(args), feed)
+    if args.samplerate:
+        settings = settings.resolved(args.samplerate)  # a shaper family becomes the design for the feed's rate
     s = settings.to_dict()
     if not seed_given:
         s["seed"] = None

@@ -139,8 +139,9 @@ SCHEMA = {
     "engine": {
         "preset": (_str, "preset", "engine preset id or path; the keys below override it"),
         "force": (_bool, "force", "accept settings theory marks unsafe"),
-        **{name: (_param(name), name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale")
-                  else None, params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
+        **{name: (_str if name == "shaper" else _param(name),  # a shaper family resolves by rate, as on the command line
+                  name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale") else None,
+                  params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
     },
     "meters": {
         "loudness_target": (_str, "loudness_target", "loudness target the output is checked against: ebu-r128, "
@@ -282,7 +283,9 @@ def _check_combinations(feed):
                                      force=eng.get("force") or None)
             params.settings_with(settings, {k: eng[k] for k in ENGINE_ONLY_KEYS if k in eng}).validate()
         except RtstageError as exc:
-            raise RtstageError(f"feed {feed.path}: engine: {exc}") from None
+            text = str(exc)
+            key = next((k for k in SCHEMA["engine"] if k in eng and k in text), None)
+            raise RtstageError(f"feed {feed.path}: engine{'.' + key if key else ''}: {text}") from None
     tap = v.get("tap", {})
     if ("rotate_s" in tap or "rotate_mb" in tap or "keep" in tap) and "path" not in tap:
         raise RtstageError(f"feed {feed.path}: tap.path: rotation and retention need a tap path")

@@ -413,6 +413,11 @@ class ServiceWiring:
                 values[name] = getattr(self.args, name)
         out = {}
         for name, value in values.items():
+            if name == "shaper" and value is not None:
+                from ..settings import EngineSettings
+
+                # a family (a preset's "gentle9") becomes the design for this stream's rate, as at the start
+                value = EngineSettings(shaper=value).resolved(self.engine.samplerate).shaper_id
             if name in params.PARAMS and value is not None:
                 out[name] = params.validate(name, value)
         return out
