@@ -134,6 +134,22 @@ def test_example_is_valid_and_check_prints_resolution(tmp_path):
     assert bad.stderr.count("\n") == 1
 
 
+def test_unit_template_passes_systemd_analyze_verify(tmp_path):
+    """systemd's own unit parser (``systemd-analyze verify``, package systemd) reads the unit without a complaint."""
+    unit = _rtstage("feed", "unit", "rtstage").stdout
+    (tmp_path / "rtstage@.service").write_text(unit)
+    (tmp_path / "rtstage@link-a.service").symlink_to("rtstage@.service")
+    ok = subprocess.run(["systemd-analyze", "verify", "--man=no", "rtstage@link-a.service"], cwd=tmp_path,
+                        capture_output=True, text=True, timeout=60)
+    assert ok.returncode == 0 and ok.stderr.strip() == "", ok.stderr
+    # the check can fail: a misspelt key is reported
+    (tmp_path / "typo@.service").write_text(unit.replace("WatchdogSec=", "WatchdogSecs="))
+    (tmp_path / "typo@link-a.service").symlink_to("typo@.service")
+    bad = subprocess.run(["systemd-analyze", "verify", "--man=no", "typo@link-a.service"], cwd=tmp_path,
+                         capture_output=True, text=True, timeout=60)
+    assert "Unknown key" in bad.stderr and "WatchdogSecs" in bad.stderr
+
+
 def test_unit_template():
     unit = _rtstage("feed", "unit", "rtstage")
     assert unit.returncode == 0

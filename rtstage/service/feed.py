@@ -443,6 +443,8 @@ def unit_text(name="rtstage", python=None, feed_dir="/etc/rtstage"):
     import sys
 
     command = python or f"{sys.executable} -m rtstage"
+    docs = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "docs",
+                        "service.md")
     return f'''\
 # {name}@.service: one rtstage feed per instance; the instance name is the feed file's.
 # Install:  rtstage feed unit {name} > /etc/systemd/system/{name}@.service
@@ -450,7 +452,7 @@ def unit_text(name="rtstage", python=None, feed_dir="/etc/rtstage"):
 # (reads {feed_dir}/link-a.toml; see docs/service.md)
 [Unit]
 Description=rtstage feed %i
-Documentation=file:docs/service.md
+Documentation=file://{docs}
 After=sound.target network.target
 StartLimitIntervalSec=300
 StartLimitBurst=10
@@ -458,6 +460,9 @@ StartLimitBurst=10
 [Service]
 Type=notify
 NotifyAccess=main
+# a system user of its own, in the audio group (useradd --system --groups audio rtstage)
+User=rtstage
+SupplementaryGroups=audio
 ExecStart={command} run --feed {feed_dir}/%i.toml --quiet
 ExecReload=/bin/kill -HUP $MAINPID
 Restart=on-failure
@@ -470,14 +475,15 @@ KillSignal=SIGTERM
 LimitRTPRIO=95
 LimitMEMLOCK=infinity
 Nice=-5
-# Audio group for the sound devices (and a JACK server's socket)
-SupplementaryGroups=audio
 # Hardening that leaves audio working
 NoNewPrivileges=yes
 ProtectSystem=strict
 ProtectHome=read-only
 ReadWritePaths=/var/lib/rtstage
 StateDirectory=rtstage
+# the compiled callback and kernels are cached here (the program's own tree is read-only)
+CacheDirectory=rtstage
+Environment=XDG_CACHE_HOME=/var/cache/rtstage NUMBA_CACHE_DIR=/var/cache/rtstage/numba
 PrivateTmp=no
 ProtectKernelTunables=yes
 ProtectKernelModules=yes
