@@ -74,3 +74,17 @@ def test_set_get_error_subscribe_over_udp():
         for _, values, _ in stack.target.applied:
             applied.update(values)
         assert applied == {"bits": 12, "mute": True, "gain_db": -3.5, "dither": "rpdf"}
+
+
+def test_garbage_datagrams_leave_the_server_answering():
+    import socket
+
+    with control_stack(EngineSettings(bits=16, dither="tpdf", seed=3), driver=False) as stack, \
+            OscControl(stack.controller, port=0) as osc:
+        with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as raw:
+            for junk in (b"", b"\x00" * 3, b"not osc at all", b"/rtstage/param/bits\x00,i\x00\x00", b"#bundle\x00" + b"\xff" * 9):
+                raw.sendto(junk, ("127.0.0.1", osc.port))
+        client = SimpleUDPClient("127.0.0.1", osc.port)
+        client.send_message("/rtstage/get/bits", [])
+        assert replies(client) == [("/rtstage/param/bits", [16])]  # still serving
+        assert stack.target.get()["bits"] == 16  # nothing was changed by the junk

@@ -28,7 +28,7 @@ from rtstage import Engine, EngineSettings, params
 from rtstage.control.automation import AutomationPlayer, load_automation, process_with_automation
 from rtstage.control.client import ControlClient
 from rtstage.live.sources import generate
-from rtstage.service.rotate import list_segments
+from rtstage.service.rotate import list_segments, segment_engine
 
 from test_service_notify import Manager
 
@@ -87,12 +87,16 @@ def scrape(url):
     return out
 
 
-def rerender(settings, source, start_frame, nframes, events, chunk=4096):
-    """Offline render of ``nframes`` of ``source`` from ``start_frame`` with logged changes applied."""
-    x = generate(source, SR, 2, start_frame, nframes)
-    engine = Engine(settings, 2, SR, start_frame=start_frame)
+def render_from(engine, source, nframes, events, chunk=4096):
+    """Offline render of ``nframes`` of ``source`` from ``engine.frame`` with logged changes applied."""
+    x = generate(source, SR, 2, engine.frame, nframes)
     player = AutomationPlayer(events)
     return np.concatenate([process_with_automation(engine, x[i:i + chunk], player) for i in range(0, nframes, chunk)])
+
+
+def rerender(settings, source, start_frame, nframes, events):
+    """Offline render of ``nframes`` of ``source`` from ``start_frame`` with logged changes applied."""
+    return render_from(Engine(settings, 2, SR, start_frame=start_frame), source, nframes, events)
 
 
 def test_metrics_and_osc_against_status_meters_and_rerender(jack_server, tmp_path):
@@ -149,6 +153,9 @@ def test_metrics_and_osc_against_status_meters_and_rerender(jack_server, tmp_pat
                 assert m[("rtstage_true_peak_dbtp", (ch,))] == rep["true_peak_dbtp"]
                 if rep["noise_modulation_db"] is not None:
                     assert m[("rtstage_noise_modulation_db", (ch,))] == rep["noise_modulation_db"]
+            loud = meters["loudness"]
+            assert loud["momentary_lufs"] is not None  # 400 ms blocks exist after a second of audio
+            assert m[("rtstage_loudness_lufs", (("kind", "momentary"),))] == loud["momentary_lufs"]
 
             # OSC: a control surface subscribes, sets the word length, asks it back
             surface = SimpleUDPClient("127.0.0.1", oport)
@@ -190,7 +197,7 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     tap, log_path, st = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json"))
     feed_path = tmp_path / "link.toml"
     text = (f'[feed]\nname = "link-test"\n[audio]\nsource = "{source}"\nsamplerate = {SR}\nblocksize = 256\n'
-            f'[engine]\nbits = 16\ndither = "tpdf"\nshaper = "flat"\nseed = 555\n'
+            f'[engine]\npreset = "link16"\nbits = 16\nseed = 555\n'
             f'[tap]\npath = "{tap}"\nrotate_s = 0.5\n[automation_log]\npath = "{log_path}"\n[control]\nport = 0\n')
     feed_path.write_text(text)
     manager = Manager()
@@ -215,6 +222,7 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     assert "feed reload: audio.blocksize changed (256 -> 512): needs a restart; not applied" in err
     status = json.load(open(st))
     assert status["reloads"] == 1 and status["feed"] == "link-test" and status["blocksize"] == 256
+    assert status["restarts"] == 0 and status["discontinuities"] == 0  # the reload left no gap
     segments = list_segments(tap)
     logs = list_segments(log_path)
     assert len(segments) >= 4 and [k for k, _ in logs] == [k for k, _ in segments]
@@ -225,12 +233,23 @@ def test_feed_reload_and_rotated_segments_rerender_alone(jack_server, tmp_path):
     changes = [(f, v) for _, name in logs for f, v in load_automation(name, SR)[1:]]
     assert len(changes) == 1 and changes[0][1] == {"bits": 12} and changes[0][0] % 256 == 0
     # concatenated segments: the unrotated render, nothing lost or duplicated at a boundary
-    base = EngineSettings(bits=16, dither="tpdf", shaper="flat", seed=555)
+    # presets/link16.toml: TPDF with the gentle9 family, whose 48 kHz design has error feedback (history matters)
+    base = EngineSettings(bits=16, dither="tpdf", shaper="gentle9-48k", seed=555)
     assert_array_equal(whole, rerender(base, source, 0, whole.shape[0], changes))
-    # each segment alone, from the source and its own log segment (flat shaper: no history to carry)
-    for ((_, start), _), part, (_, log_name) in zip(segments, parts, logs):
+    # each segment alone, from the source, its sidecar's kernel state and its own log segment
+    for ((_, start), name), part, (_, log_name) in zip(segments, parts, logs):
         events = load_automation(log_name, SR)
-        first_frame, state = events[0]
+        first_frame, restated = events[0]
         assert first_frame == start
-        settings = params.settings_with(EngineSettings(seed=state["seed"]), state)
-        assert_array_equal(part, rerender(settings, source, start, part.shape[0], events[1:]))
+        state = json.load(open(name + ".json"))["state_at_start"]
+        assert state is not None, name
+        engine, preroll, skip = segment_engine(state, start, 2, SR)
+        assert 0 <= skip < 48 * 256 and params.values_from_settings(engine.settings) == {
+            k: v for k, v in state["values"].items() if k in params.ENGINE_FIELDS}
+        words = render_from(engine, source, skip + part.shape[0], preroll + events[1:])
+        assert_array_equal(part, words[skip:])
+        if start > 0:
+            # without the carried state (a fresh engine at the boundary) the shaped noise differs
+            fresh = rerender(params.settings_with(EngineSettings(seed=restated["seed"]), restated), source, start,
+                             part.shape[0], events[1:])
+            assert np.any(fresh != part)

@@ -30,6 +30,8 @@ SNAP = {
     "gap_s": 0.75, "cpu_load": 0.031, "cpu_load_max": 0.07, "control_changes": 4, "reloads": 0,
     "tap_dropped_frames": 0, "meter_dropped_frames": 256, "watchdog_pings": 20, "watchdog_missed": 1,
     "meter_frames": 598016,
+    "loudness": {"momentary_lufs": -22.5, "short_term_lufs": -23.1, "integrated_lufs": None,
+                 "loudness_range_lu": 4.5, "target": {"pass": False}},
     "channels": [
         {"added_noise_dbfs": {"unweighted": -101.2, "a_weighted": -103.4, "itu468": -92.1},
          "noise_modulation_db": 0.4, "sample_peak_dbfs": -0.5, "true_peak_dbtp": 0.3, "clipped": 12, "replaced": 1,
@@ -70,6 +72,10 @@ def test_exposition_over_loopback_http():
     assert ("rtstage_added_noise_dbfs", (("channel", "2"), feed, ("weighting", "a"))) not in got
     assert got[("rtstage_thread_realtime_priority", (feed, ("policy", "fifo"), ("process", "stream"),
                                                      ("thread", "jack-client")))] == 70
+    assert got[("rtstage_loudness_lufs", (feed, ("kind", "short_term")))] == -23.1
+    assert ("rtstage_loudness_lufs", (feed, ("kind", "integrated"))) not in got  # not defined yet
+    assert got[("rtstage_loudness_range_lu", (feed,))] == 4.5
+    assert got[("rtstage_loudness_target_pass", (feed,))] == 0
     info = [k for k in got if k[0] == "rtstage_feed_info"]
     assert dict(info[0][1])["shaper"] == "flat"
 

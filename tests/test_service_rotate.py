@@ -113,3 +113,21 @@ def test_automation_segments_restate_state_and_route_by_frame(tmp_path):
     assert load_automation(segs[1][1]) == [(2000, {"bits": 12, "dither": "tpdf", "gain_db": 0.0}),
                                            (2304, {"dither": "rpdf"})]
     assert load_automation(segs[2][1]) == [(3000, {"bits": 12, "dither": "rpdf", "gain_db": 0.0})]
+
+
+def test_state_snapshot_only_between_callbacks():
+    from rtstage import kernel as K
+    from rtstage.service.rotate import take_state_snapshot
+
+    block = _block()
+    block.kernel.hist[:] = np.arange(block.kernel.hist.size).reshape(block.kernel.hist.shape) * 0.25
+    block.kernel.clock[K.CLK_FRAME] = 3 * 256
+    block.ctl[S.C_CALLBACKS] = 3
+    block.ctl[S.C_FRAMES] = 3 * 256  # the callback adds its frames last: all three callbacks finished
+    snap = take_state_snapshot(block, 256)
+    assert snap["frame"] == 768
+    assert_array_equal(snap["hist"], block.kernel.hist)
+    block.kernel.hist[:] = 0.0
+    assert snap["hist"][0, 1] == 0.25  # a copy, not a view of the live arrays
+    block.ctl[S.C_CALLBACKS] = 4  # a fourth callback started and has not finished
+    assert take_state_snapshot(block, 256) is None

@@ -5,7 +5,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
-packages=(libportaudio2 libsndfile1 jackd2 libjack-jackd2-dev libasound2 gcc)
+packages=(libportaudio2 libsndfile1 jackd2 libjack-jackd2-dev libasound2 gcc systemd)
 missing=()
 for p in "${packages[@]}"; do
   dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")

@@ -92,6 +92,31 @@ EXAMPLES = {
 
   # checked against EBU R 128 in the live display
   rtstage run --device "studio" --preset link16 --loudness-target ebu-r128""",
+    "feed": """\
+  # start the link's feed file from the commented example, then check it (no device is opened)
+  rtstage feed example > link-a.toml
+  rtstage feed check link-a.toml
+
+  # the template unit, one instance per feed file in /etc/rtstage
+  rtstage feed unit rtstage > rtstage@.service""",
+    "feed check": """\
+  # is the link's feed file valid, and what does it resolve to?
+  rtstage feed check /etc/rtstage/link-a.toml
+
+  # the same as JSON, for the station's configuration management
+  rtstage feed check /etc/rtstage/link-a.toml --json""",
+    "feed example": """\
+  # a commented feed file to start the transmitter link's from
+  rtstage feed example > /etc/rtstage/link-a.toml
+
+  # read it on the terminal first
+  rtstage feed example | less""",
+    "feed unit": """\
+  # the template unit for systemd, installed as rtstage@.service
+  rtstage feed unit rtstage > /etc/systemd/system/rtstage@.service
+
+  # feed files kept elsewhere, and rtstage run from a fixed virtual environment
+  rtstage feed unit rtstage --feed-dir /srv/feeds --exec "/opt/rtstage/.venv/bin/rtstage" > rtstage@.service""",
     "devices": """\
   # which interface carries the link
   rtstage devices

@@ -20,7 +20,7 @@ def register(subparsers):
     unit = sub.add_parser("unit", help="print the template systemd unit (install as NAME@.service)")
     unit.add_argument("name", nargs="?", default="rtstage", help="unit name without @.service (default rtstage)")
     unit.add_argument("--feed-dir", default="/etc/rtstage", help="directory of the feed files (default /etc/rtstage)")
-    unit.add_argument("--exec", dest="command", help="command that runs rtstage (default: this Python with -m rtstage)")
+    unit.add_argument("--exec", dest="exec_command", help="command that runs rtstage (default: this Python with -m rtstage)")
     unit.set_defaults(handler=unit_command)
     feed.set_defaults(handler=lambda args: (feed.print_help(sys.stderr), 2)[1])
 
@@ -53,6 +53,8 @@ def resolve(path):
                 out[f"{section}.{key}"] = (feed.values[section][key], "feed")
     seed_given = args.seed is not None
     settings = settings_with_feed(settings_from_args(args), feed)
+    if args.samplerate:
+        settings = settings.resolved(args.samplerate)  # a shaper family becomes the design for the feed's rate
     s = settings.to_dict()
     if not seed_given:
         s["seed"] = None
@@ -106,5 +108,5 @@ def unit_command(args):
     """Handler of ``rtstage feed unit``."""
     from ..service.feed import unit_text
 
-    sys.stdout.write(unit_text(args.name, args.command, args.feed_dir))
+    sys.stdout.write(unit_text(args.name, args.exec_command, args.feed_dir))
     return 0

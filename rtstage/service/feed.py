@@ -139,8 +139,13 @@ SCHEMA = {
     "engine": {
         "preset": (_str, "preset", "engine preset id or path; the keys below override it"),
         "force": (_bool, "force", "accept settings theory marks unsafe"),
-        **{name: (_param(name), name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale")
-                  else None, params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
+        **{name: (_str if name == "shaper" else _param(name),  # a shaper family resolves by rate, as on the command line
+                  name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale") else None,
+                  params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
+    },
+    "meters": {
+        "loudness_target": (_str, "loudness_target", "loudness target the output is checked against: ebu-r128, "
+                            "or LUFS[:TOLERANCE_LU[:TRUE_PEAK_DBTP]]"),
     },
     "tap": {
         "path": (_str, "tap", "tap file (with rotation: the first segment's name pattern, see docs/service.md)"),
@@ -278,7 +283,9 @@ def _check_combinations(feed):
                                      force=eng.get("force") or None)
             params.settings_with(settings, {k: eng[k] for k in ENGINE_ONLY_KEYS if k in eng}).validate()
         except RtstageError as exc:
-            raise RtstageError(f"feed {feed.path}: engine: {exc}") from None
+            text = str(exc)
+            key = next((k for k in SCHEMA["engine"] if k in eng and k in text), None)
+            raise RtstageError(f"feed {feed.path}: engine{'.' + key if key else ''}: {text}") from None
     tap = v.get("tap", {})
     if ("rotate_s" in tap or "rotate_mb" in tap or "keep" in tap) and "path" not in tap:
         raise RtstageError(f"feed {feed.path}: tap.path: rotation and retention need a tap path")
@@ -384,11 +391,14 @@ channels = 2
 preset = "link16"                # presets/link16.toml; the keys below override it
 # bits = 16
 # dither = "tpdf"
-# shaper = "lvw-me9"
+# shaper = "gentle9"             # a family: the design for the feed's rate
 # gain_db = 0.0
 # seed = 12345                   # fixed seed: taps re-render from the source alone
 # auto_mute = true               # mute a channel whose input is exact digital zero
 # auto_mute_hold_s = 2.0
+
+[meters]
+loudness_target = "ebu-r128"     # pass/fail of the output's loudness (status, metrics)
 
 [tap]
 path = "/var/lib/rtstage/link-a/tap.wav"   # the exact words sent to the device
@@ -433,6 +443,8 @@ def unit_text(name="rtstage", python=None, feed_dir="/etc/rtstage"):
     import sys
 
     command = python or f"{sys.executable} -m rtstage"
+    docs = os.path.join(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))), "docs",
+                        "service.md")
     return f'''\
 # {name}@.service: one rtstage feed per instance; the instance name is the feed file's.
 # Install:  rtstage feed unit {name} > /etc/systemd/system/{name}@.service
@@ -440,7 +452,7 @@ def unit_text(name="rtstage", python=None, feed_dir="/etc/rtstage"):
 # (reads {feed_dir}/link-a.toml; see docs/service.md)
 [Unit]
 Description=rtstage feed %i
-Documentation=file:docs/service.md
+Documentation=file://{docs}
 After=sound.target network.target
 StartLimitIntervalSec=300
 StartLimitBurst=10
@@ -448,6 +460,9 @@ StartLimitBurst=10
 [Service]
 Type=notify
 NotifyAccess=main
+# a system user of its own, in the audio group (useradd --system --groups audio rtstage)
+User=rtstage
+SupplementaryGroups=audio
 ExecStart={command} run --feed {feed_dir}/%i.toml --quiet
 ExecReload=/bin/kill -HUP $MAINPID
 Restart=on-failure
@@ -460,14 +475,15 @@ KillSignal=SIGTERM
 LimitRTPRIO=95
 LimitMEMLOCK=infinity
 Nice=-5
-# Audio group for the sound devices (and a JACK server's socket)
-SupplementaryGroups=audio
 # Hardening that leaves audio working
 NoNewPrivileges=yes
 ProtectSystem=strict
 ProtectHome=read-only
 ReadWritePaths=/var/lib/rtstage
 StateDirectory=rtstage
+# the compiled callback and kernels are cached here (the program's own tree is read-only)
+CacheDirectory=rtstage
+Environment=XDG_CACHE_HOME=/var/cache/rtstage NUMBA_CACHE_DIR=/var/cache/rtstage/numba
 PrivateTmp=no
 ProtectKernelTunables=yes
 ProtectKernelModules=yes

@@ -42,7 +42,8 @@ References
    units, ``_total`` suffix, unit suffixes).
 .. [2] Prometheus, "Exposition formats" (text format 0.0.4).
 .. [3] AES17-2020, dBFS: the RMS of a full-scale sine reads 0 dBFS.
-.. [4] ITU-R BS.1770-4, true peak (dBTP).
+.. [4] ITU-R BS.1770-4, true peak (dBTP) and loudness (LUFS).
+.. [5] EBU Tech 3342, loudness range (LU).
 """
 
 import ipaddress
@@ -70,6 +71,9 @@ def empty_snapshot():
         ``control_changes``, ``reloads``, ``tap_dropped_frames``,
         ``meter_dropped_frames``, ``watchdog_pings``, ``watchdog_missed``,
         ``meter_frames`` (frames in the current meter report),
+        ``loudness`` (the meter report's loudness section: ``momentary_lufs``,
+        ``short_term_lufs``, ``integrated_lufs``, ``loudness_range_lu``,
+        ``target`` with ``pass``),
         ``channels``: list of dicts with ``added_noise_dbfs`` (dict
         reading -> dBFS or None), ``noise_modulation_db``,
         ``sample_peak_dbfs``, ``true_peak_dbtp``, ``clipped``, ``replaced``,
@@ -189,6 +193,19 @@ class FeedCollector:
             if ch.get("auto_muted") is not None:
                 per_channel["am"].add_metric(lab, float(bool(ch["auto_muted"])))
         yield from per_channel.values()
+
+        loud = snap.get("loudness") or {}
+        lufs = GaugeMetricFamily(PREFIX + "loudness_lufs", "Programme loudness of the output (BS.1770), by kind",
+                                 labels=fl + ["kind"])
+        for kind in ("momentary", "short_term", "integrated"):
+            value = _level(loud.get(f"{kind}_lufs"))
+            if value is not None:
+                lufs.add_metric([feed, kind], value)
+        yield lufs
+        yield gauge("loudness_range_lu", "Loudness range (EBU Tech 3342)", _level(loud.get("loudness_range_lu")))
+        verdict = (loud.get("target") or {}).get("pass")
+        yield gauge("loudness_target_pass", "1 when the programme meets the loudness target, 0 when not (absent "
+                    "while undecided or without a target)", None if verdict is None else int(bool(verdict)))
 
         sched = GaugeMetricFamily(PREFIX + "thread_realtime_priority", "Real-time priority the threads got "
                                   "(0: not real-time), by process, thread name and policy",

@@ -124,7 +124,7 @@ class Notifier:
         env = os.environ if environ is None else environ
         self.address = notify_address(env.get("NOTIFY_SOCKET"))
         self._sock = None
-        self._lock = threading.Lock()
+        self._lock = threading.RLock()  # re-entrant: a signal handler on the main thread may send too
         self._failed = False
         self.sent = 0
         if self.address is not None:

@@ -18,16 +18,21 @@ is closed (start sample index, frames, gaps and drops inside it).
 The automation log rotates on the same grid: ``automation.jsonl`` becomes
 ``automation-20261202T093000Z-000000172800.jsonl``, whose first change line (after the
 header) restates *every* parameter in force at the segment's first frame.
-A segment of the tap can therefore be re-rendered from the source and its
-own log segment alone: an :class:`rtstage.engine.Engine` started at that
-sample index (``start_frame``) with the restated values, the changes
-applied at their logged frames.  The dither is a pure function of (seed,
-channel, sample index), so this is exact whenever the engine's state at
-the boundary is its rest state: no error-feedback history (the flat shaper),
-no gain ramp or mute ramp in progress, no auto-mute hold under way.  With a
-feedback shaper, a segment re-renders exactly as part of the whole run
-(all segments from the first), which the logs also allow; see
-docs/service.md.
+The dither is a pure function of (seed, channel, sample index), so the
+only other thing a segment needs to be re-rendered on its own is the
+kernel's state at its first frame: the shaper's error history, a gain or
+mute ramp under way, the auto-mute counters.  A :class:`BoundarySnapshots`
+thread copies that state from the shared block (read-only, between two
+callbacks: the audio thread is never stopped or asked for anything) at the
+last block boundary S0 before each segment boundary B, and the segment's
+sidecar carries it as ``state_at_start``: the sample index S0, the parameter
+values in force there, the changes applied in [S0, B) and the kernel arrays.
+:func:`segment_engine` rebuilds an :class:`rtstage.engine.Engine` from it;
+rendering the source from S0 and dropping the first B - S0 frames gives the
+segment's words exactly, whatever the shaper.  Without a snapshot (none
+could be taken in time, or the tap dropped blocks) ``state_at_start`` is
+null and the segment re-renders exactly as part of the whole run, from the
+first segment on.
 
 While the tap ring drops nothing, tap frame k is sample index k, and the
 grid is on sample indices.  A dropped block (counted, as always) shifts the
@@ -123,6 +128,188 @@ def _retain(path, keep, extra_suffixes=(".json",)):
     return removed
 
 
+
+# ----------------------------------------------------------------------------- kernel state at a boundary
+
+STATE_ARRAYS = ("iparams", "fparams", "hist", "counts", "clock", "ramp")
+"""Kernel state arrays a segment snapshot carries (the Philox cache is left out: it never changes a value)."""
+
+
+def take_state_snapshot(block, blocksize):
+    """A consistent copy of the kernel state between two callbacks, or None when a callback was running.
+
+    Parameters
+    ----------
+    block : SharedBlock
+        The live engine's shared arrays.
+    blocksize : int
+        Frames per callback (fixed for the stream).
+
+    Returns
+    -------
+    dict or None
+        ``frame`` (sample index of the next frame the callback will
+        process) and a copy of each array of :data:`STATE_ARRAYS`.
+
+    Notes
+    -----
+    The callback increments the callback counter first and adds its frames
+    to the frame counter last, so between two callbacks
+    ``frames == callbacks * blocksize``.  The copy counts only when that
+    holds before and after it with neither counter moved: no callback ran
+    while the arrays were read.  Reads only; the audio thread is never
+    stopped or waited for.  (x86 keeps loads in order; on weaker memory
+    models a fence belongs around the copy.)
+    """
+    from .. import kernel as K
+    from ..live import shared as S
+
+    ctl = block.ctl
+    c1, f1 = int(ctl[S.C_CALLBACKS]), int(ctl[S.C_FRAMES])
+    if f1 != c1 * blocksize:
+        return None
+    kst = block.kernel
+    copy = {name: np.array(getattr(kst, name), copy=True) for name in STATE_ARRAYS}
+    c2, f2 = int(ctl[S.C_CALLBACKS]), int(ctl[S.C_FRAMES])
+    if c2 != c1 or f2 != f1:
+        return None
+    copy["frame"] = int(copy["clock"][K.CLK_FRAME])
+    return copy
+
+
+class BoundarySnapshots:
+    """Thread taking a kernel-state snapshot just before each segment boundary (see the module notes).
+
+    Parameters
+    ----------
+    block : SharedBlock
+        The live engine's shared arrays.
+    blocksize : int
+        Frames per callback.
+    samplerate : int
+        Sample rate in Hz.
+    segment_frames : int
+        Frames per segment: the boundaries are its multiples.
+    lead_s : float
+        How long before a boundary the thread starts polling closely.
+
+    Notes
+    -----
+    Far from a boundary the thread sleeps; within ``lead_s`` of it, it
+    polls every millisecond and keeps the latest snapshot taken at or
+    before the boundary.  :meth:`get` hands out the snapshot of boundary
+    ``b`` (kept for the last few boundaries).
+    """
+
+    KEEP = 16
+
+    def __init__(self, block, blocksize, samplerate, segment_frames, lead_s=0.05):
+        self.block = block
+        self.blocksize = int(blocksize)
+        self.samplerate = int(samplerate)
+        self.segment_frames = int(segment_frames)
+        self.lead_s = float(lead_s)
+        self._snaps = {}
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="rtstage-snapshots", daemon=True)
+        self.missed = 0
+
+    def start(self):
+        """Start the thread; returns self."""
+        self._thread.start()
+        return self
+
+    def stop(self):
+        """Stop the thread."""
+        self._stop.set()
+        if self._thread.is_alive():
+            self._thread.join()
+
+    def get(self, boundary):
+        """The snapshot for ``boundary`` (None when none could be taken)."""
+        with self._lock:
+            return self._snaps.get(int(boundary))
+
+    def _run(self):
+        from .. import kernel as K
+
+        clock = self.block.kernel.clock
+        best = None
+        boundary = None
+        while not self._stop.is_set():
+            frame = int(clock[K.CLK_FRAME])
+            if boundary is None or frame > boundary:
+                if boundary is not None:
+                    with self._lock:
+                        if best is None:
+                            self.missed += 1
+                        else:
+                            self._snaps[boundary] = best
+                        for old in sorted(self._snaps)[:-self.KEEP]:
+                            del self._snaps[old]
+                boundary = (frame // self.segment_frames + 1) * self.segment_frames
+                best = None
+            to_go_s = (boundary - frame) / self.samplerate
+            if to_go_s > self.lead_s:
+                self._stop.wait(min(to_go_s - self.lead_s, 0.5))
+                continue
+            snap = take_state_snapshot(self.block, self.blocksize)
+            if snap is not None and snap["frame"] <= boundary:
+                best = snap
+            self._stop.wait(0.001)
+
+
+def segment_state(snapshot, boundary, log=None):
+    """The ``state_at_start`` of the segment starting at ``boundary``, from a snapshot and the log's history."""
+    if snapshot is None:
+        return None
+    s0 = snapshot["frame"]
+    out = {"frame": s0}
+    if log is not None:
+        out["values"] = log.values_before(s0)
+        out["events"] = [[f, v] for f, v in log.events_from(s0) if f < boundary]
+    for name in STATE_ARRAYS:
+        out[name] = snapshot[name].tolist()
+    return out
+
+
+def segment_engine(state, start_frame, nchannels, samplerate, settings_type=None):
+    """An engine positioned at ``state["frame"]`` with the kernel state of a segment sidecar.
+
+    Parameters
+    ----------
+    state : dict
+        The sidecar's ``state_at_start``.
+    start_frame : int
+        The segment's first sample index (B).
+    nchannels, samplerate : int
+        Stream geometry.
+
+    Returns
+    -------
+    (Engine, list of (int, dict), int)
+        The engine, the changes to apply from ``state["frame"]`` on (those of
+        [S0, B) first; add the segment's own log after them), and the frames
+        to render and drop before the segment's first frame (B - S0).
+    """
+    from .. import params
+    from ..engine import Engine
+    from ..settings import EngineSettings
+
+    values = state["values"]
+    settings = params.settings_with(EngineSettings(seed=values["seed"]), values)
+    s0 = int(state["frame"])
+    engine = Engine(settings, nchannels, samplerate, start_frame=s0)
+    kst = engine.state
+    if not state.get("rest"):
+        for name in STATE_ARRAYS:
+            getattr(kst, name)[...] = np.asarray(state[name], dtype=getattr(kst, name).dtype)
+        kst.rng_tag[:] = -1
+    events = [(int(f), v) for f, v in state.get("events", [])]
+    return engine, events, int(start_frame) - s0
+
+
 class RotatingTapWriter:
     """Drop-in for :class:`rtstage.live.tap.TapWriter` that writes segments (see the module notes).
 
@@ -149,10 +336,15 @@ class RotatingTapWriter:
         ``on_retain(start_frames)`` with the start frames of removed segments.
     run_id : str or None
         Run id in the segment names (:func:`new_run_id`).
+    snapshots : BoundarySnapshots or None
+        Kernel-state snapshots at the boundaries (started and stopped with this writer).
+    log : RotatingAutomationLog or callable or None
+        The automation log (or a callable returning it), for the values and
+        changes around a boundary.
     """
 
     def __init__(self, path, block, samplerate, bits, info=None, segment_frames=None, keep=None, on_segment=None,
-                 on_retain=None, run_id=None):
+                 on_retain=None, run_id=None, snapshots=None, log=None):
         from ..live.tap import CHUNK_FRAMES
 
         if segment_frames is None or segment_frames < 1:
@@ -166,6 +358,8 @@ class RotatingTapWriter:
         self.keep = keep
         self.on_segment = on_segment
         self.on_retain = on_retain
+        self.snapshots = snapshots
+        self._log = log
         self.gaps = []
         self.frames_written = 0
         self.segments = []
@@ -206,12 +400,24 @@ class RotatingTapWriter:
             return
         self._file.close()
         seg = self._seg
-        dropped = int(self.block.ctl[self._dropped_index()]) - seg.pop("dropped_before")
+        dropped_total = int(self.block.ctl[self._dropped_index()])
+        dropped = dropped_total - seg.pop("dropped_before")
         sidecar = {**seg, "end_frame": seg["start_frame"] + seg["frames"], "dropped_frames": dropped,
-                   "samplerate": self.samplerate, **self.info}
+                   "samplerate": self.samplerate, **self.info, "state_at_start": self._state_at(seg, dropped_total)}
         with open(seg["path"] + ".json", "w") as f:
             json.dump(sidecar, f, indent=1)
         self._file = None
+
+    def _state_at(self, seg, dropped_total):
+        """``state_at_start`` of a closing segment (see the module notes)."""
+        log = self._log() if callable(self._log) else self._log
+        start = seg["start_frame"]
+        if start == 0:
+            values = log.values_before(0) if log is not None else None
+            return {"frame": 0, "rest": True, "values": values, "events": []}
+        if self.snapshots is None or dropped_total:
+            return None  # after a drop, tap frames are no longer sample indices
+        return segment_state(self.snapshots.get(start), start, log)
 
     def _rotate(self, start):
         self._close_segment()
@@ -227,9 +433,11 @@ class RotatingTapWriter:
 
     # -- thread -------------------------------------------------------------------------------
     def start(self):
-        """Start draining."""
+        """Start draining (and the snapshot thread)."""
         if self.on_segment is not None:
             self.on_segment(0)
+        if self.snapshots is not None:
+            self.snapshots.start()
         self._thread.start()
 
     def _write(self, words):
@@ -282,6 +490,8 @@ class RotatingTapWriter:
         self._stop.set()
         if self._thread.is_alive():
             self._thread.join()
+        if self.snapshots is not None:
+            self.snapshots.stop()
         if self._seg is not None:
             # gaps recorded by the engine land in the segment that holds their tap frame
             for gap in self.gaps:
@@ -334,6 +544,9 @@ class RotatingAutomationLog:
     line restating every parameter at its first frame.
     """
 
+    HISTORY = 4096
+    """Recent changes kept for :meth:`values_before` and :meth:`events_from`."""
+
     def __init__(self, path, samplerate, segment_frames, initial_values, format_version, keep=None, run_id=None):
         self.path = path
         self.format_version = format_version
@@ -342,6 +555,8 @@ class RotatingAutomationLog:
         self.segment_frames = int(segment_frames)
         self.keep = keep
         self.values = dict(initial_values)
+        self._base_values = dict(initial_values)  # values before every change still in the history
+        self._history = []  # (frame, values) of recent changes, in order
         self._lock = threading.Lock()
         self._file = None
         self._start = None
@@ -383,6 +598,26 @@ class RotatingAutomationLog:
             self._file.write(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")) + "\n")
             self._file.flush()
             self.values.update(values)
+            self._history.append((int(frame), dict(values)))
+            if len(self._history) > self.HISTORY:
+                for _, old in self._history[:-self.HISTORY // 2]:
+                    self._base_values.update(old)
+                del self._history[:-self.HISTORY // 2]
+
+    def values_before(self, frame):
+        """Every parameter's value in force before the changes at ``frame`` (from the recent history)."""
+        with self._lock:
+            out = dict(self._base_values)
+            for f, values in self._history:
+                if f >= frame:
+                    break
+                out.update(values)
+            return out
+
+    def events_from(self, frame):
+        """Changes applied at ``frame`` or later (recent history), in order."""
+        with self._lock:
+            return [(f, dict(v)) for f, v in self._history if f >= frame]
 
     def close(self):
         """Flush and close the current segment."""

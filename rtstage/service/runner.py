@@ -117,14 +117,16 @@ def configure_engine(engine, args):
     """Before ``engine.prepare()``: make the engine write its tap in segments when asked."""
     if not rotation_wanted(args):
         return
-    from .rotate import RotatingTapWriter, new_run_id
+    from .rotate import BoundarySnapshots, RotatingTapWriter, new_run_id
 
     holder = {"run_id": new_run_id()}
 
     def factory(path, block, samplerate, bits, info=None):
         frames = segment_frames(args, samplerate, block.nchannels, bits)
+        snapshots = BoundarySnapshots(block, engine.blocksize, samplerate, frames)
         writer = RotatingTapWriter(path, block, samplerate, bits, info, segment_frames=frames, keep=args.tap_keep,
-                                   run_id=holder["run_id"], on_segment=lambda start: holder.get("log") and holder["log"].advance(start))
+                                   run_id=holder["run_id"], snapshots=snapshots, log=lambda: holder.get("log"),
+                                   on_segment=lambda start: holder.get("log") and holder["log"].advance(start))
         holder["writer"] = writer
         return writer
 
@@ -327,6 +329,7 @@ class ServiceWiring:
             "meter_dropped_frames": eng.block.counter(S.C_MRING_DROPPED),
             "watchdog_pings": hb.pings if hb else 0, "watchdog_missed": hb.missed if hb else 0,
             "meter_frames": (meters or {}).get("frames"),
+            "loudness": (meters or {}).get("loudness"),
             "channels": channels,
             "threads": threads,
         }
@@ -410,6 +413,11 @@ class ServiceWiring:
                 values[name] = getattr(self.args, name)
         out = {}
         for name, value in values.items():
+            if name == "shaper" and value is not None:
+                from ..settings import EngineSettings
+
+                # a family (a preset's "gentle9") becomes the design for this stream's rate, as at the start
+                value = EngineSettings(shaper=value).resolved(self.engine.samplerate).shaper_id
             if name in params.PARAMS and value is not None:
                 out[name] = params.validate(name, value)
         return out
