@@ -1,0 +1,517 @@
+"""The one output policy: every file any rtstage command writes goes through here.
+
+A command declares what it reads and what it will write in an
+:class:`OutputPlan`, checks the plan once before any audio work, and writes
+each output through :meth:`OutputPlan.atomic` (a path to write) or
+:meth:`OutputPlan.open` (a file object)::
+
+    plan = OutputPlan("rendering in.wav", inputs=["in.wav"], overwrite=args.overwrite)
+    wav = plan.add_file("out.wav", "output")
+    rep = plan.add_file("out.json", "--report")
+    plan.check()                       # everything refused here, nothing written yet
+    with plan.atomic(wav) as tmp:      # write tmp (fsync'd on success)
+        ...
+    plan.commit()                      # every written output renamed into place
+
+or ``with plan: ...``, which checks on entry, commits on a normal exit and
+removes everything on any other.
+
+The rules, in the order :meth:`OutputPlan.check` applies them:
+
+* an output that is, or resolves to (symbolic links, ``..``, a hard link to
+  the same inode), a file the command reads, or another output of the same
+  command, is refused;
+* an output that is an existing folder is refused, and said so plainly; an
+  existing file is refused unless ``overwrite`` is set;
+* every output's folder must exist and be writable, checked by creating the
+  temporary file the output will be written into (so a read-only file system,
+  a missing folder or a full inode table fail before any audio work); when the
+  size of an output is known, free space and the file-size limit are checked
+  too.
+
+Writing is atomic: a temporary file in the output's own folder, flushed and
+fsync'd, renamed onto the final name, then the folder fsync'd.  Temporary
+files are registered while they exist; :func:`install_signal_handlers` makes
+SIGINT, SIGTERM and SIGHUP remove them and raise :class:`Interrupted`, and
+SIGXFSZ is ignored so a file-size limit (``ulimit -f``) becomes an ``EFBIG``
+error that is cleaned up like a full disk (``ENOSPC``).  Files get the mode
+the umask gives to ordinary files (0666 & ~umask), like any program's output.
+
+Exit statuses (the command line's ``main`` reads ``exit_status``): 2 for a
+refused output (usage), 1 for a failed write (I/O), 128 + signal number for
+an interruption (130 SIGINT, 143 SIGTERM, 129 SIGHUP).
+"""
+
+import contextlib
+import errno
+import os
+import signal
+import stat
+import tempfile
+import threading
+
+from ..errors import RtstageError
+
+__all__ = [
+    "OutputPlan",
+    "OutputRefused",
+    "WriteFailed",
+    "Interrupted",
+    "install_signal_handlers",
+    "remove_live_temps",
+    "set_activity",
+    "file_mode",
+    "io_error",
+]
+
+TEMP_PREFIX = ".rtstage-"
+"""Prefix of every temporary file (hidden, in the output's own folder)."""
+
+
+class OutputRefused(RtstageError):
+    """An output the policy refuses before anything is written (exit status 2)."""
+
+    exit_status = 2
+
+
+class WriteFailed(RtstageError):
+    """Writing an output failed (full disk, file-size limit, I/O error); nothing was left behind (exit status 1)."""
+
+    exit_status = 1
+
+
+class Interrupted(KeyboardInterrupt):
+    """SIGINT, SIGTERM or SIGHUP arrived; temporary files are already removed.
+
+    A subclass of KeyboardInterrupt so that code which stops cleanly on
+    Ctrl-C stops the same way on the other two.
+    """
+
+    def __init__(self, signum):
+        super().__init__(signum)
+        self.signum = int(signum)
+        self.exit_status = 128 + self.signum
+
+    def message(self):
+        """One line: which signal, and what was interrupted."""
+        name = signal.Signals(self.signum).name
+        return f"interrupted by {name} while {_activity[0]}; no output was left half-written"
+
+
+_live = {}
+_live_lock = threading.Lock()
+_activity = ["starting"]
+
+
+def set_activity(text):
+    """Say what the command is doing (for the one line printed when a signal interrupts it)."""
+    _activity[0] = str(text)
+
+
+def _register(tmp_path, final_path):
+    with _live_lock:
+        _live[tmp_path] = final_path
+
+
+def _forget(tmp_path):
+    with _live_lock:
+        _live.pop(tmp_path, None)
+
+
+def remove_live_temps():
+    """Remove every temporary file still registered; returns how many were removed."""
+    with _live_lock:
+        paths = list(_live)
+        _live.clear()
+    removed = 0
+    for path in paths:
+        try:
+            os.unlink(path)
+            removed += 1
+        except OSError:
+            pass
+    return removed
+
+
+def _on_signal(signum, frame):
+    remove_live_temps()
+    raise Interrupted(signum)
+
+
+def install_signal_handlers():
+    """SIGINT/SIGTERM/SIGHUP remove temporary files and raise :class:`Interrupted`; SIGXFSZ is ignored.
+
+    Call once from the main thread, before any output is written.  With
+    SIGXFSZ ignored, exceeding RLIMIT_FSIZE makes ``write`` fail with EFBIG
+    instead of killing the process, so the temporary file is removed.
+    """
+    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
+        signal.signal(sig, _on_signal)
+    if hasattr(signal, "SIGXFSZ"):
+        signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+
+
+def _read_umask():
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def file_mode():
+    """The mode an ordinary new file gets under the current umask (0666 & ~umask)."""
+    return 0o666 & ~_read_umask()
+
+
+def io_error(path, exc, what="write"):
+    """A :class:`WriteFailed` naming the path and the reason of an OSError (full disk and size limit said plainly)."""
+    code = getattr(exc, "errno", None)
+    if code == errno.ENOSPC:
+        reason = "no space left on the device"
+    elif code == errno.EFBIG:
+        reason = "file too large (file-size limit reached)"
+    elif code == errno.EDQUOT:
+        reason = "disk quota exceeded"
+    else:
+        reason = getattr(exc, "strerror", None) or str(exc)
+    return WriteFailed(f"cannot {what} {path}: {reason}; nothing was written")
+
+
+def _identity(path):
+    """(st_dev, st_ino) of an existing path (following links), else None."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino)
+
+
+class _Output:
+    def __init__(self, path, what, size_bytes=None, folder=False):
+        self.path = os.fspath(path)
+        self.what = what
+        self.size_bytes = size_bytes
+        self.folder = folder
+        self.tmp = None
+        self.created_folder = False
+        self.files = []
+
+    @property
+    def real(self):
+        return os.path.realpath(self.path)
+
+
+class OutputPlan:
+    """The inputs and outputs of one command, checked together before any audio work.
+
+    Parameters
+    ----------
+    activity : str
+        What the command does, for the line printed on a signal (for
+        example ``"rendering in.wav to out.wav"``).
+    inputs : iterable of str
+        Every file the command reads (audio, preset, shaper, automation,
+        report); an output may not be, or resolve to, any of them.
+    overwrite : bool
+        Replace existing output files (``--overwrite``); folders and inputs
+        are never replaced.
+    """
+
+    def __init__(self, activity, inputs=(), overwrite=False):
+        self.activity = activity
+        self.inputs = []
+        self.overwrite = bool(overwrite)
+        self.outputs = []
+        self._checked = False
+        for path in inputs:
+            self.add_input(path)
+        set_activity(activity)
+
+    def add_input(self, path):
+        """Declare one more file the command reads (None is ignored)."""
+        if path is not None:
+            self.inputs.append(os.fspath(path))
+        return path
+
+    def add_file(self, path, what="output", size_bytes=None):
+        """Declare an output file; ``size_bytes`` (when known) is checked against free space and RLIMIT_FSIZE."""
+        out = _Output(path, what, size_bytes=size_bytes)
+        self.outputs.append(out)
+        return out
+
+    def add_folder(self, path, what, filenames):
+        """Declare an output folder (created when missing) and the names of the files it will receive."""
+        out = _Output(path, what, folder=True)
+        self.outputs.append(out)
+        for name in filenames:
+            sub = _Output(os.path.join(out.path, name), f"{what} file", size_bytes=None)
+            sub.parent_folder = out
+            out.files.append(sub)
+        return out
+
+    # -- checking -------------------------------------------------------------
+
+    def _all_files(self):
+        for out in self.outputs:
+            if out.folder:
+                yield from out.files
+            else:
+                yield out
+
+    def check(self):
+        """Apply every rule to every output; raise :class:`OutputRefused` (or WriteFailed) before anything is written.
+
+        On success each output file has its temporary file created (and
+        registered for removal), which proves its folder writable.
+        """
+        inputs = [(p, os.path.realpath(p), _identity(p)) for p in self.inputs]
+        seen = {}
+        try:
+            for out in self.outputs:
+                if out.folder:
+                    self._check_folder(out)
+            for out in self._all_files():
+                self._check_file(out, inputs, seen)
+            for out in self._all_files():
+                self._reserve(out)
+        except BaseException:
+            self.discard()
+            raise
+        self._checked = True
+        return self
+
+    def _check_folder(self, out):
+        path = out.path
+        if os.path.lexists(path) and not os.path.isdir(path):
+            raise OutputRefused(f"{out.what} {path} exists and is not a folder")
+        if not os.path.isdir(path):
+            parent = os.path.dirname(os.path.abspath(path))
+            if not os.path.isdir(parent):
+                raise OutputRefused(f"{out.what} {path}: the folder {parent} does not exist")
+
+    def _check_file(self, out, inputs, seen):
+        path = out.path
+        if path == "" or path.endswith(os.sep):
+            raise OutputRefused(f"{out.what} '{path}' is not a file name")
+        real = out.real
+        ident = _identity(path)
+        for given, input_real, input_ident in inputs:
+            if real == input_real or (ident is not None and ident == input_ident):
+                same = "is" if os.path.abspath(path) == os.path.abspath(given) else "resolves to"
+                raise OutputRefused(f"{out.what} {path} {same} the input {given}; refusing to write over an input")
+        for other_real, (other_what, other_path, other_ident) in seen.items():
+            if real == other_real or (ident is not None and ident == other_ident):
+                raise OutputRefused(f"{out.what} {path} and {other_what} {other_path} are the same file")
+        seen[real] = (out.what, path, ident)
+        if os.path.isdir(path):
+            raise OutputRefused(f"{out.what} {path} is a folder; give a file name")
+        if os.path.lexists(path):
+            if not os.path.exists(path) or not stat.S_ISREG(os.stat(path).st_mode):
+                if os.path.exists(path):
+                    raise OutputRefused(f"{out.what} {path} exists and is not a regular file")
+            if not self.overwrite:
+                raise OutputRefused(f"{out.what} {path} exists (use --overwrite to replace it)")
+        parent = getattr(out, "parent_folder", None)
+        if parent is not None and not os.path.isdir(parent.path):
+            return  # the folder is created when written; its parent was checked
+        folder = os.path.dirname(os.path.abspath(path))
+        if not os.path.isdir(folder):
+            raise OutputRefused(f"{out.what} {path}: the folder {folder} does not exist")
+
+    def _reserve(self, out):
+        parent = getattr(out, "parent_folder", None)
+        folder = os.path.dirname(os.path.abspath(out.path))
+        if parent is not None and not os.path.isdir(parent.path):
+            folder = os.path.dirname(os.path.abspath(parent.path))
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".part", dir=folder)
+        except OSError as exc:
+            if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+                raise OutputRefused(f"{out.what} {out.path}: cannot write in {folder} ({exc.strerror})") from None
+            raise io_error(out.path, exc, "create") from None
+        os.close(fd)
+        _register(tmp, out.path)
+        out.tmp = tmp
+        if out.size_bytes:
+            self._check_space(out, folder)
+
+    def _check_space(self, out, folder):
+        import resource
+
+        soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+        if soft != resource.RLIM_INFINITY and out.size_bytes > soft:
+            raise WriteFailed(f"{out.what} {out.path} needs about {out.size_bytes} bytes, above the file-size limit "
+                              f"of {soft} bytes (ulimit -f); nothing was written")
+        try:
+            st = os.statvfs(folder)
+        except OSError:
+            return
+        free = st.f_bavail * st.f_frsize
+        if out.size_bytes > free:
+            raise WriteFailed(f"{out.what} {out.path} needs about {out.size_bytes} bytes; {folder} has {free} bytes free; "
+                              f"nothing was written")
+
+    def discard(self):
+        """Remove every temporary file and every folder this plan created (on any failure)."""
+        for out in self._all_files():
+            if out.tmp is not None:
+                try:
+                    os.unlink(out.tmp)
+                except OSError:
+                    pass
+                _forget(out.tmp)
+                out.tmp = None
+        for out in self.outputs:
+            if out.folder and out.created_folder:
+                try:
+                    os.rmdir(out.path)
+                except OSError:
+                    pass
+                out.created_folder = False
+
+    # -- writing --------------------------------------------------------------
+
+    def _find(self, target):
+        if isinstance(target, _Output):
+            return target
+        for out in self._all_files():
+            if out.path == os.fspath(target):
+                return out
+        raise KeyError(f"{target} was not declared in this output plan")
+
+    def file_in(self, folder, name):
+        """The declared output ``name`` inside output folder ``folder``."""
+        for out in folder.files:
+            if os.path.basename(out.path) == name:
+                return out
+        raise KeyError(f"{name} was not declared in {folder.path}")
+
+    def _prepare_tmp(self, out):
+        parent = getattr(out, "parent_folder", None)
+        if parent is not None and not os.path.isdir(parent.path):
+            try:
+                os.mkdir(parent.path)
+            except OSError as exc:
+                raise io_error(parent.path, exc, "create the folder") from None
+            parent.created_folder = True
+        folder = os.path.dirname(os.path.abspath(out.path))
+        if out.tmp is not None and os.path.dirname(out.tmp) != folder:
+            os.unlink(out.tmp)
+            _forget(out.tmp)
+            out.tmp = None
+        if out.tmp is None:
+            try:
+                fd, out.tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".part", dir=folder)
+            except OSError as exc:
+                raise io_error(out.path, exc, "create") from None
+            os.close(fd)
+            _register(out.tmp, out.path)
+        os.chmod(out.tmp, file_mode())
+        return out.tmp
+
+    @contextlib.contextmanager
+    def atomic(self, target):
+        """Context manager yielding the temporary path to write ``target`` into.
+
+        On a normal exit the temporary file is fsync'd and kept until
+        :meth:`commit` renames every written output into place (so a failure in
+        a later output leaves none of them behind).  On any exception (a
+        signal, a full disk, a file-size limit, an error) every temporary file
+        of the plan is removed, with any folder it created, and OSErrors
+        become :class:`WriteFailed`.
+        """
+        if not self._checked:
+            raise RuntimeError("OutputPlan.check() must run before writing")
+        out = self._find(target)
+        try:
+            tmp = self._prepare_tmp(out)
+            yield tmp
+            fd = os.open(tmp, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+            out.ready = True
+        except OSError as exc:
+            self.discard()
+            raise io_error(out.path, exc) from None
+        except BaseException:
+            self.discard()
+            raise
+
+    @contextlib.contextmanager
+    def open(self, target, mode="w", encoding="utf-8"):
+        """Context manager yielding a file object writing ``target`` atomically (``mode`` "w" or "wb")."""
+        with self.atomic(target) as tmp:
+            kwargs = {} if "b" in mode else {"encoding": encoding}
+            with open(tmp, mode, **kwargs) as f:
+                yield f
+                f.flush()
+
+    def write_text(self, target, text):
+        """Write ``text`` (UTF-8) to ``target`` atomically."""
+        with self.open(target, "w") as f:
+            f.write(text)
+
+    def commit(self):
+        """Rename every written output onto its name, fsync the folders, and remove unused temporary files."""
+        folders = set()
+        try:
+            for out in self._all_files():
+                if getattr(out, "ready", False) and out.tmp is not None:
+                    os.replace(out.tmp, out.path)
+                    _forget(out.tmp)
+                    out.tmp = None
+                    out.ready = False
+                    folders.add(os.path.dirname(os.path.abspath(out.path)))
+                    parent = getattr(out, "parent_folder", None)
+                    if parent is not None:
+                        parent.created_folder = False  # it holds a finished file now
+        except OSError as exc:
+            self.discard()
+            raise io_error(out.path, exc, "rename into") from None
+        for folder in folders:
+            _fsync_folder(folder)
+        self.finish()
+
+    def finish(self):
+        """Remove the temporary files of outputs that were declared but not written."""
+        for out in self._all_files():
+            if out.tmp is not None:
+                try:
+                    os.unlink(out.tmp)
+                except OSError:
+                    pass
+                _forget(out.tmp)
+                out.tmp = None
+
+    def __enter__(self):
+        if not self._checked:
+            self.check()
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.commit()
+        else:
+            self.discard()
+        return False
+
+
+def _fsync_folder(folder):
+    try:
+        fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
