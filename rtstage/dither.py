@@ -16,7 +16,7 @@ gaussian   4     normal, sigma = Q/2                          1/4
 
 ``tpdf-hp`` has a triangular amplitude distribution like ``tpdf`` but its
 spectrum rises as 4 sin²(ω/2): it is not i.i.d., which is why the engine
-refuses it inside a feedback shaper unless forced.
+refuses it inside a feedback shaper unless --accept-unsafe-shaping is given.
 
 References
 ----------

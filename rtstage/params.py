@@ -241,7 +241,7 @@ def validate(name, value):
     return value
 
 
-def validate_values(values, current=None, force=False):
+def validate_values(values, current=None, accept_unsafe=False, warn=None, source="a control request"):
     """Validate several changes together; nothing is accepted unless all are.
 
     Parameters
@@ -251,8 +251,13 @@ def validate_values(values, current=None, force=False):
     current : dict or None
         Current values of all parameters; the merged result is checked
         against the engine's combination rules.  None: the defaults.
-    force : bool
-        Accept combinations that :meth:`EngineSettings.validate` refuses unless forced.
+    accept_unsafe : bool
+        Accept combinations that :meth:`EngineSettings.validate` refuses as unsafe.
+    warn : callable or None
+        Called with one warning line (naming the risk, its reference and
+        ``source``) whenever an unsafe combination is accepted.
+    source : str
+        Where the values came from, for that warning.
 
     Returns
     -------
@@ -277,11 +282,15 @@ def validate_values(values, current=None, force=False):
     shaper = _shapers().get(merged["shaper"], merged["shaper"])
     settings = _settings.EngineSettings(
         bits=merged["bits"], dither=merged["dither"], shaper=shaper, seed=merged["seed"],
-        gain_db=merged["gain_db"], dither_scale=merged["dither_scale"], force=bool(force),
+        gain_db=merged["gain_db"], dither_scale=merged["dither_scale"], accept_unsafe=bool(accept_unsafe),
         monitor=merged["monitor"], error_gain_db=merged["error_gain_db"], mute=merged["mute"],
         auto_mute=merged["auto_mute"], auto_mute_hold_s=merged["auto_mute_hold_s"],
     )
     settings.validate()
+    if warn is not None:
+        message = _engine.unsafe_warning(settings, source)
+        if message:
+            warn(message)
     return {name: checked[name] for name in PARAMS if name in checked}
 
 

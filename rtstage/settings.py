@@ -42,6 +42,28 @@ MAX_AUTO_MUTE_HOLD_S = 60.0
 """Longest auto-mute hold time."""
 
 
+UNSAFE_REASONS = {
+    "without dither": "undithered error feedback turns low-level signals into distortion and idle tones "
+                      "(Lipshitz, Wannamaker & Vanderkooy, JAES 2004)",
+    "non-i.i.d.": "correlated dither in a feedback loop no longer makes the error's moments signal-independent "
+                  "(Lipshitz, Wannamaker & Vanderkooy, JAES 2004)",
+}
+"""Why each combination :meth:`EngineSettings.validate` refuses is unsafe, keyed by words of the risk's description."""
+
+
+def _unsafe_reason(risk):
+    return UNSAFE_REASONS["without dither" if "without dither" in risk else "non-i.i.d."]
+
+
+def unsafe_warning(settings, source):
+    """The warning line for settings accepted although unsafe, naming the risk, its reference and ``source``; or None."""
+    risks = settings.unsafe_risks() if settings.accept_unsafe else []
+    if not risks:
+        return None
+    return (f"warning: accepting {risks[0]} (from {source}, --accept-unsafe-shaping): "
+            f"{_unsafe_reason(risks[0])}")
+
+
 def new_seed():
     """A random 64-bit seed (from the operating system's generator)."""
     return secrets.randbits(64)
@@ -65,8 +87,10 @@ class EngineSettings:
         Gain before the quantizer, in dB.
     dither_scale : float
         Expert setting: dither amplitude relative to the textbook amplitude.
-    force : bool
-        Accept combinations that theory marks unsafe (see :meth:`validate`).
+    accept_unsafe : bool
+        Accept combinations that theory marks unsafe (see :meth:`validate`);
+        every use should be reported with :func:`unsafe_warning`
+        (``--accept-unsafe-shaping`` on the command line).
     monitor : str
         What the output carries: ``requantized`` (the words), ``error`` (the
         added error with ``error_gain_db`` of make-up gain, hard-limited at
@@ -91,7 +115,7 @@ class EngineSettings:
     seed: object = None
     gain_db: float = 0.0
     dither_scale: float = 1.0
-    force: bool = False
+    accept_unsafe: bool = False
     monitor: str = "requantized"
     error_gain_db: float = 0.0
     mute: bool = False
@@ -122,7 +146,7 @@ class EngineSettings:
     def validate(self):
         """Raise :class:`RtstageError` naming the first setting that cannot be used.
 
-        Refused unless ``force``:
+        Refused unless ``accept_unsafe``:
 
         * noise shaping without dither: the fed-back error is then a
           deterministic function of the signal, so the loop turns low-level
@@ -164,18 +188,30 @@ class EngineSettings:
         shaper = self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper)
         if shaper.ntaps > MAX_TAPS:
             raise RtstageError(f"shaper '{shaper.id}' has {shaper.ntaps} taps; at most {MAX_TAPS}")
-        if shaper.ntaps and not self.force:
-            if self.dither == "none" or self.dither_scale == 0.0:
-                raise RtstageError(
-                    f"shaper '{shaper.id}' without dither refused: undithered error feedback turns low-level "
-                    "signals into distortion and idle tones; use --dither tpdf, or --force to accept it"
-                )
-            if not DITHER_KINDS[self.dither].iid:
-                raise RtstageError(
-                    f"dither '{self.dither}' inside shaper '{shaper.id}' refused: it is not i.i.d., and correlated "
-                    "dither in a feedback loop no longer makes the error's moments signal-independent "
-                    "(Lipshitz, Wannamaker & Vanderkooy, JAES 2004); use --dither tpdf, or --force to accept it"
-                )
+        if not self.accept_unsafe:
+            risks = self.unsafe_risks(shaper)
+            if risks:
+                raise RtstageError(f"{risks[0]} refused: {_unsafe_reason(risks[0])}; "
+                                   "use --dither tpdf, or --accept-unsafe-shaping to accept it")
+
+    def unsafe_risks(self, shaper=None):
+        """What theory marks unsafe in these settings: a list of short descriptions (empty when safe).
+
+        :data:`UNSAFE_REASONS` says why each is unsafe.
+
+        References
+        ----------
+        .. [1] S. P. Lipshitz, R. A. Wannamaker, J. Vanderkooy, "Dithered noise
+           shapers and recursive digital filters", JAES 52(11), 2004.
+        """
+        shaper = shaper or (self.shaper if isinstance(self.shaper, Shaper) else get_shaper(self.shaper))
+        if not shaper.ntaps:
+            return []
+        if self.dither == "none" or self.dither_scale == 0.0:
+            return [f"shaper '{shaper.id}' without dither"]
+        if not DITHER_KINDS[self.dither].iid:
+            return [f"non-i.i.d. dither '{self.dither}' inside shaper '{shaper.id}'"]
+        return []
 
     def to_dict(self):
         """Plain-data form (for status, logs and presets)."""

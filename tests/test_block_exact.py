@@ -40,7 +40,7 @@ def _signal(seed, nframes, nchannels, dtype=np.float64):
 
 
 def _settings(dither, shaper, seed, bits=16):
-    return EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=seed, gain_db=-0.5, force=True)
+    return EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=seed, gain_db=-0.5, accept_unsafe=True)
 
 
 def _state_snapshot(engine):
@@ -174,7 +174,7 @@ def test_random_cases_equal_reference(dither, shaper, nchannels, bits, signal_se
     # Same comparison as TestAgainstReference (same arithmetic order, bit for bit) over random
     # settings, start frames up to 2^62 and amplitude scales.
     x = _signal(signal_seed, 80, nchannels)
-    s = EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, force=True)
+    s = EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, accept_unsafe=True)
     engine = Engine(s, nchannels, 48000, start_frame=start_frame)
     y = engine.process(x)
     r = ref.reference_requantize(

@@ -99,7 +99,7 @@ class TestValidateValues:
         current["shaper"] = "wannamaker-f9"
         with pytest.raises(RtstageError, match="without dither"):
             params.validate_values({"dither": "none"}, current)
-        assert params.validate_values({"dither": "none"}, current, force=True) == {"dither": "none"}
+        assert params.validate_values({"dither": "none"}, current, accept_unsafe=True) == {"dither": "none"}
 
     def test_all_or_nothing(self):
         with pytest.raises(RtstageError, match="bits"):

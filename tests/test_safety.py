@@ -69,7 +69,7 @@ def _disturbed_signal(nperiods, nchannels, seed=0):
 
 
 def _engine(nchannels, dither="tpdf", force=False, seed=2822):
-    return Engine(EngineSettings(bits=BITS, dither=dither, shaper=SHAPER, seed=seed, force=force), nchannels, 44100)
+    return Engine(EngineSettings(bits=BITS, dither=dither, shaper=SHAPER, seed=seed, accept_unsafe=force), nchannels, 44100)
 
 
 def _replaced(x):

@@ -2,7 +2,7 @@
 
 Limits from the project's promise: B = 2..24 bits, dither kinds none, rpdf,
 tpdf, tpdf-hp, gaussian, seeds 0..2^64-1, 1..64 channels, 8 kHz..384 kHz.
-Refusals unless ``force`` (EngineSettings.validate, with its sources):
+Refusals unless ``accept_unsafe`` (EngineSettings.validate, with its sources):
 noise shaping without dither (undithered error feedback gives signal-
 dependent error, Lipshitz, Wannamaker & Vanderkooy, JAES 40(5), 1992) and a
 non-i.i.d. dither (tpdf-hp) inside a feedback shaper (Lipshitz, Wannamaker &
@@ -84,12 +84,12 @@ class TestShaperSafety:
     def test_shaping_without_dither_refused_unless_forced(self, shaper):
         _refused(EngineSettings(dither="none", shaper=shaper, seed=1))
         _refused(EngineSettings(dither="tpdf", dither_scale=0.0, shaper=shaper, seed=1))
-        Engine(EngineSettings(dither="none", shaper=shaper, seed=1, force=True), 1, 48000)
+        Engine(EngineSettings(dither="none", shaper=shaper, seed=1, accept_unsafe=True), 1, 48000)
 
     @pytest.mark.parametrize("shaper", ("diff1", "wannamaker-f9", "lvw-e5"))
     def test_tpdf_hp_inside_shaper_refused_unless_forced(self, shaper):
         _refused(EngineSettings(dither="tpdf-hp", shaper=shaper, seed=1))
-        Engine(EngineSettings(dither="tpdf-hp", shaper=shaper, seed=1, force=True), 1, 48000)
+        Engine(EngineSettings(dither="tpdf-hp", shaper=shaper, seed=1, accept_unsafe=True), 1, 48000)
 
     def test_iid_dither_inside_shaper_accepted(self):
         for dither in ("rpdf", "tpdf", "gaussian"):

@@ -85,6 +85,12 @@ def parse_request(line):
     return obj, rid
 
 
+def _log_warning(message):
+    from ..engine import log
+
+    log(message)
+
+
 def _refuse_constant(name):
     raise RequestError(f"{name} is not a JSON number")
 
@@ -176,20 +182,34 @@ class PresetStore:
             raise RequestError(f"preset {name!r}: {exc}") from None
 
     def save(self, name, values, overwrite=False):
-        """Write ``values`` (without ``seed``) as preset ``name``."""
+        """Write ``values`` (without ``seed``) as preset ``name`` through the output policy.
+
+        ``name`` is a plain name (no separator, no ``..``, not absolute); the
+        file stays inside the preset folder even through a symbolic link, and
+        an existing preset is replaced only when ``overwrite`` is true.
+        """
+        from ..files.policy import OutputPlan
+
         path = self._path(name)
-        if os.path.exists(path) and not overwrite:
-            raise RequestError(f"preset {name!r} exists; send overwrite: true to replace it")
+        folder = os.path.realpath(self.directory)
+        if os.path.dirname(os.path.realpath(path)) != folder:
+            raise RequestError(f"preset {name!r} would resolve outside the preset folder")
         lines = ["# rtstage parameter preset", "[values]"]
         lines += [f"{k} = {_toml_value(v)}" for k, v in values.items() if k != "seed" and v is not None]
         try:
             os.makedirs(self.directory, exist_ok=True)
-            tmp = path + ".tmp"
-            with open(tmp, "w", encoding="utf-8") as f:
-                f.write("\n".join(lines) + "\n")
-            os.replace(tmp, path)
         except OSError as exc:
-            raise RequestError(f"cannot write preset {name!r}: {exc.strerror}") from None
+            raise RequestError(f"cannot create the preset folder: {exc.strerror}") from None
+        plan = OutputPlan(f"saving preset {name!r}", overwrite=overwrite)
+        out = plan.add_file(path, f"preset {name!r}")
+        try:
+            with plan:
+                plan.write_text(out, "\n".join(lines) + "\n")
+        except RtstageError as exc:
+            text = str(exc)
+            if "use --overwrite" in text:
+                text = f"preset {name!r} exists; send overwrite: true to replace it"
+            raise RequestError(text) from None
 
 
 # ----------------------------------------------------------------------------- controller
@@ -204,8 +224,10 @@ class Controller:
         What is controlled.
     presets : PresetStore or None
         Parameter presets for ``preset_load``/``preset_save`` and program changes.
-    force : bool
-        Pass ``force`` to the engine's combination rules (as ``--force`` does).
+    accept_unsafe : bool
+        Accept combinations the engine's rules mark unsafe (as
+        ``--accept-unsafe-shaping`` does); every change that uses it logs a
+        warning naming the risk and the change's source.
 
     Notes
     -----
@@ -216,10 +238,10 @@ class Controller:
     (MIDI feedback queues, the server schedules a write).
     """
 
-    def __init__(self, target, presets=None, force=False):
+    def __init__(self, target, presets=None, accept_unsafe=False):
         self.target = target
         self.presets = presets
-        self.force = force
+        self.accept_unsafe = accept_unsafe
         self.midi = None
         self._lock = threading.Lock()
         self._listeners = []
@@ -248,7 +270,8 @@ class Controller:
             The reason nothing was applied.
         """
         with self._lock:
-            checked = params.validate_values(values, self.target.get(), force=self.force)
+            checked = params.validate_values(values, self.target.get(), accept_unsafe=self.accept_unsafe,
+                                             warn=_log_warning, source=f"control source '{source}'")
             self.target.check(checked)
             ticket = self.target.submit(checked)
         for callback in list(self._listeners):

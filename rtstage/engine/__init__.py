@@ -20,7 +20,7 @@ Examples
 from ..settings import (  # noqa: F401  (the settings value object and its limits, re-exported)
     ERROR_CEILING_DBFS, GAIN_RAMP_SECONDS, MAX_AUTO_MUTE_HOLD_S, MAX_BITS, MAX_CHANNELS, MAX_DITHER_SCALE,
     MAX_ERROR_GAIN_DB, MAX_GAIN_DB, MAX_SAMPLERATE, MIN_BITS, MIN_GAIN_DB, MIN_SAMPLERATE, MONITOR_MODES, SEED_MAX,
-    EngineSettings, new_seed,
+    EngineSettings, new_seed, unsafe_warning,
 )
 from .automation import AutomationPlayer, process_with_automation  # noqa: F401
 from .core import Engine, container_bits, encode_params  # noqa: F401

@@ -303,7 +303,7 @@ class OutputPlan:
         ident = _identity(path)
         for given, input_real, input_ident in inputs:
             if real == input_real or (ident is not None and ident == input_ident):
-                same = "is" if os.path.abspath(path) == os.path.abspath(given) else "resolves to"
+                same = "is" if path == given else "resolves to"
                 raise OutputRefused(f"{out.what} {path} {same} the input {given}; refusing to write over an input")
         for other_real, (other_what, other_path, other_ident) in seen.items():
             if real == other_real or (ident is not None and ident == other_ident):
