@@ -914,12 +914,19 @@ def design_to_toml(design):
     return "\n".join(lines) + "\n"
 
 
-def save_design(design, path):
-    """Write :func:`design_to_toml` to ``path``."""
-    try:
-        directory = os.path.dirname(os.path.abspath(path))
-        os.makedirs(directory, exist_ok=True)
-        with open(path, "w", encoding="utf-8") as f:
-            f.write(design_to_toml(design))
-    except OSError as exc:
-        raise RtstageError(f"cannot write shaper file {path}: {exc.strerror}") from None
+def save_design(design, path, plan=None, overwrite=False):
+    """Write :func:`design_to_toml` to ``path`` through the output policy.
+
+    With ``plan`` (checked, ``path`` declared in it) the caller commits;
+    without, a plan of its own refuses an existing file unless ``overwrite``.
+    """
+    from .files.policy import OutputPlan
+
+    text = design_to_toml(design)
+    if plan is not None:
+        plan.write_text(path, text)
+        return
+    own = OutputPlan(f"saving the shaper design {path}", overwrite=overwrite)
+    own.add_file(path, "shaper file")
+    with own:
+        own.write_text(path, text)

@@ -5,15 +5,15 @@ integer or 32/64-bit float samples) block by block as float64, runs the same
 :func:`rtstage.kernel.process_block` the live engine runs, and writes PCM in the
 smallest container that holds the word length (≤ 16 bits → PCM_16, ≤ 24 →
 PCM_24) unless a subtype is given.  Shorter words are left-justified, the
-unused low bits zero.  The output is written to a temporary file beside the
-target and renamed into place only when complete, so a failed render leaves
-nothing half-written.
+unused low bits zero.  Every output goes through the output policy
+(:mod:`rtstage.files.policy`): checked before any audio work, written to a
+temporary file beside the target and renamed into place only when complete,
+so a failed or interrupted render leaves nothing half-written.
 """
 
 import os
 import queue
 import sys
-import tempfile
 import threading
 from dataclasses import dataclass
 
@@ -118,9 +118,62 @@ def _progress(total_frames, samplerate):
     )
 
 
+def estimated_bytes(frames, channels, subtype, fmt):
+    """Size of an uncompressed output in bytes (plus a header allowance), or None for compressed formats."""
+    width = {"PCM_S8": 1, "PCM_U8": 1, "PCM_16": 2, "PCM_24": 3, "PCM_32": 4, "FLOAT": 4, "DOUBLE": 8}.get(subtype)
+    if width is None or fmt == "FLAC":
+        return None
+    return int(frames) * int(channels) * width + 4096
+
+
+def open_input(input_path, accept_truncated=False):
+    """Open a sound file for reading after the chunk-level checks of :func:`rtstage.files.riff.check_input`.
+
+    Returns ``(soundfile, layout)``; refuses (one line, exit status 2) a
+    missing, unreadable, truncated (unless ``accept_truncated``, which warns)
+    or empty file.
+    """
+    from .files.riff import InputRefused, check_input
+
+    path = os.fspath(input_path)
+    if not os.path.exists(path):
+        raise InputRefused(f"cannot read {path}: no such file")
+    if os.path.isdir(path):
+        raise InputRefused(f"cannot read {path}: it is a folder")
+    try:
+        layout = check_input(path, accept_truncated=accept_truncated, warn=log)
+    except OSError as exc:
+        raise InputRefused(f"cannot read {path}: {exc.strerror}") from None
+    try:
+        infile = sf.SoundFile(path)
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        raise InputRefused(f"cannot read {path}: {_sf_reason(exc)}") from None
+    if infile.frames <= 0:
+        infile.close()
+        raise InputRefused(f"{path} holds no audio frames")
+    return infile, layout
+
+
+def _sf_reason(exc):
+    text = str(exc).strip()
+    if text.startswith("Error opening"):
+        text = text.split(":", 1)[-1].strip()
+    return text or type(exc).__name__
+
+
+def coding_history_text(settings):
+    """The free text (T=) of rtstage's CodingHistory line: version, dither, shaper, seed, and gain when not 0."""
+    from . import __version__
+
+    text = f"rtstage {__version__} {settings.dither.upper()} {settings.shaper_id} seed {settings.seed}"
+    if settings.gain_db:
+        text += f" gain {settings.gain_db:g} dB"
+    return text
+
+
 def render_file(
-    input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, force=False, observers=(),
-    automation=None, meters=None, quiet=False,
+    input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, overwrite=False, observers=(),
+    automation=None, meters=None, plan=None, accept_truncated=False, new_bext=False, quiet=False,
 ):
     """Requantize ``input_path`` into ``output_path``.
 
@@ -136,8 +189,9 @@ def render_file(
     subtype : str or None
         libsndfile subtype (``PCM_16``, ``PCM_24``, ``PCM_32``, ``PCM_S8``,
         ``PCM_U8``, ``FLOAT``, ``DOUBLE``); None picks PCM_16 or PCM_24.
-    force : bool
-        Replace an existing output file (never the input itself).
+    overwrite : bool
+        Replace an existing output file (never an input; see
+        :mod:`rtstage.files.policy`).  Ignored when ``plan`` is given.
     observers : sequence of callables
         Each is called as ``observer(x_block, words_block, engine)`` after every
         block; the arrays are reused afterwards, so copy what you keep.
@@ -150,6 +204,17 @@ def render_file(
         :meth:`rtstage.meters.MeterBank.for_engine`) whose ``update(vq, words)``
         receives every block with the quantizer input from the kernel's meter
         tap; read its report after the render.
+    plan : OutputPlan or None
+        An output plan, already checked, in which ``output_path`` is declared
+        (the command line declares the report and plots in the same plan);
+        the output is written into it and left for the caller to commit.
+        None: a plan of this render alone, committed on success.
+    accept_truncated : bool
+        Render a WAV/AIFF whose data is shorter than its header declares
+        (with a warning) instead of refusing it.
+    new_bext : bool
+        Give a WAV output a new ``bext`` chunk when the input has none (by
+        default a ``bext`` is only carried, never invented).
     quiet : bool
         No progress bar.
 
@@ -158,16 +223,18 @@ def render_file(
     RenderResult
         The engine after the last block (settings, counters), the meter (or
         None) and the programme's peak at the quantizer input.
+
+    Notes
+    -----
+    Metadata: a WAV input's ``bext`` (EBU Tech 3285) is carried into a WAV
+    output with one CodingHistory line appended (EBU R 98); ``iXML`` and
+    ``LIST/INFO`` are carried unchanged; other formats carry the text tags
+    libsndfile exposes.  See :mod:`rtstage.files.riff`.
     """
-    if os.path.exists(output_path):
-        if os.path.exists(input_path) and os.path.samefile(input_path, output_path):
-            raise RtstageError(f"refusing to overwrite the input file {input_path}")
-        if not force:
-            raise RtstageError(f"{output_path} exists (use --force to replace it)")
-    try:
-        infile = sf.SoundFile(input_path)
-    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-        raise RtstageError(f"cannot read {input_path}: {exc}") from None
+    from .files import riff
+    from .files.policy import OutputPlan, write_failure
+
+    infile, layout = open_input(input_path, accept_truncated=accept_truncated)
     with infile:
         check_stream_shape(infile.samplerate, infile.channels, input_path)
         settings = settings.resolved()
@@ -180,46 +247,85 @@ def render_file(
         fmt = _output_format(output_path)
         if not sf.check_format(fmt, subtype):
             raise RtstageError(f"format {fmt} cannot hold subtype {subtype}")
+        own_plan = plan is None
+        if own_plan:
+            plan = OutputPlan(f"rendering {input_path} to {output_path}", inputs=[input_path], overwrite=overwrite)
+            plan.add_file(output_path, "output", size_bytes=estimated_bytes(infile.frames, infile.channels, subtype, fmt))
+            plan.check()
         engine = Engine(settings, infile.channels, infile.samplerate, container=info.container)
         meter = meters(engine) if meters else None
         player = AutomationPlayer(automation) if automation else None
-        out_dir = os.path.dirname(os.path.abspath(output_path))
-        fd, tmp_path = tempfile.mkstemp(prefix=".rtstage-", suffix=os.path.splitext(output_path)[1], dir=out_dir)
-        os.close(fd)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp_path, 0o666 & ~umask)
+        carried = riff.carried_chunks(input_path, layout) if layout is not None else []
+        raw_carry = layout is not None and layout.container in ("WAV", "RF64", "BW64") and fmt in ("WAV", "RF64")
+        tags = {} if raw_carry else riff.text_tags(infile)
+        if fmt not in ("WAV", "RF64"):
+            if any(cid == "bext" for cid, _ in carried):
+                log(f"note: the input's bext chunk is not carried into a {fmt} output (only WAV and RF64 hold one)")
+            carried = []
         progress = None if quiet else _progress(infile.frames, infile.samplerate)
         peak = 0.0
+        frames_read = 0
         try:
-            with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \
-                    _Reader(infile, blocksize) as reader, \
-                    _Writer(outfile, (blocksize, infile.channels), engine.dtype, info.float_out) as writer:
-                vq = np.empty((blocksize, infile.channels), dtype=np.float64)
-                task = progress.add_task("render", total=infile.frames) if progress else None
-                if progress:
-                    progress.start()
-                for inbuf, x in reader:
-                    n = x.shape[0]
-                    words = writer.acquire()
-                    if player is not None:
-                        process_with_automation(engine, x, player, out=words, quantizer_in=vq)
-                    else:
-                        engine.process(x, out=words[:n], quantizer_in=vq[:n])
-                    block = words[:n]
-                    peak = max(peak, float(np.max(np.abs(vq[:n]), initial=0.0)))
-                    if meter is not None:
-                        meter.update(vq[:n], block)
-                    for observer in observers:
-                        observer(x, block, engine)
-                    reader.release(inbuf)
-                    writer.submit(words, n)
-                    if progress:
-                        progress.advance(task, n)
-            os.replace(tmp_path, output_path)
+            with plan.atomic(output_path) as tmp_path:
+                try:
+                    with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \
+                            _Reader(infile, blocksize) as reader, \
+                            _Writer(outfile, (blocksize, infile.channels), engine.dtype, info.float_out) as writer:
+                        for name, value in tags.items():
+                            try:
+                                setattr(outfile, name, value)
+                            except Exception:  # a format that cannot hold this tag: leave it out
+                                pass
+                        vq = np.empty((blocksize, infile.channels), dtype=np.float64)
+                        task = progress.add_task("render", total=infile.frames) if progress else None
+                        if progress:
+                            progress.start()
+                        for inbuf, x in reader:
+                            n = x.shape[0]
+                            frames_read += n
+                            words = writer.acquire()
+                            if player is not None:
+                                process_with_automation(engine, x, player, out=words, quantizer_in=vq)
+                            else:
+                                engine.process(x, out=words[:n], quantizer_in=vq[:n])
+                            block = words[:n]
+                            peak = max(peak, float(np.max(np.abs(vq[:n]), initial=0.0)))
+                            if meter is not None:
+                                meter.update(vq[:n], block)
+                            for observer in observers:
+                                observer(x, block, engine)
+                            reader.release(inbuf)
+                            writer.submit(words, n)
+                            if progress:
+                                progress.advance(task, n)
+                except _ReadError as exc:
+                    raise RtstageError(f"cannot read {input_path} after {frames_read} frames: {exc.reason}; "
+                                       "nothing was written") from None
+                except (sf.LibsndfileError, RuntimeError, AssertionError, OSError) as exc:
+                    raise write_failure(output_path, tmp_path, exc) from None
+                if frames_read < infile.frames:
+                    raise RtstageError(f"cannot read {input_path}: it ended after {frames_read} of {infile.frames} frames; "
+                                       "nothing was written")
+                chunks = []
+                for cid, payload in carried:
+                    if cid == "bext":
+                        line = riff.coding_history_line(infile.samplerate, settings.bits, infile.channels,
+                                                        coding_history_text(engine.settings))
+                        payload = riff.append_coding_history(payload, line)
+                    chunks.append((cid, payload))
+                if new_bext and fmt in ("WAV", "RF64") and not any(cid == "bext" for cid, _ in chunks):
+                    line = riff.coding_history_line(infile.samplerate, settings.bits, infile.channels,
+                                                    coding_history_text(engine.settings))
+                    chunks.insert(0, ("bext", riff.new_bext(line)))
+                try:
+                    riff.append_chunks(tmp_path, chunks)
+                except OSError as exc:
+                    raise write_failure(output_path, tmp_path, exc) from None
+            if own_plan:
+                plan.commit()
         except BaseException:
-            if os.path.exists(tmp_path):
-                os.unlink(tmp_path)
+            if own_plan:
+                plan.discard()
             raise
         finally:
             if progress:
@@ -227,6 +333,14 @@ def render_file(
     if meter is not None and hasattr(meter, "set_engine_counts"):
         meter.set_engine_counts(engine.clipped, engine.nonfinite)
     return RenderResult(engine, meter, peak)
+
+
+class _ReadError(Exception):
+    """A read error in the middle of the input, raised from the reader thread."""
+
+    def __init__(self, reason):
+        super().__init__(reason)
+        self.reason = reason
 
 
 class _Reader:
@@ -256,7 +370,9 @@ class _Reader:
                 self._full.put((buf, block))
                 if block.shape[0] == 0:
                     return
-        except BaseException as exc:  # handed to the consumer, which raises it
+        except (sf.LibsndfileError, RuntimeError, OSError) as exc:  # handed to the consumer, which raises it
+            self._full.put((None, _ReadError(_sf_reason(exc))))
+        except BaseException as exc:
             self._full.put((None, exc))
 
     def __enter__(self):
@@ -345,6 +461,7 @@ class RenderResult:
     def peak_dbfs(self):
         """``peak`` in dBFS (sample peak; -inf for silence)."""
         return 20.0 * np.log10(self.peak) if self.peak > 0 else float("-inf")
+
 
 
 def shaper_warnings(settings, samplerate, peak_dbfs=None):

@@ -143,11 +143,11 @@ class AutomationWriter:
     thread, never from the audio callback.
     """
 
-    def __init__(self, path, samplerate):
+    def __init__(self, path, samplerate, write_path=None):
         self.path = path
         self.samplerate = int(samplerate)
         try:
-            self._file = open(path, "w", encoding="utf-8")
+            self._file = open(write_path or path, "w", encoding="utf-8")
         except OSError as exc:
             raise RtstageError(f"cannot write automation log {path}: {exc.strerror}") from None
         self._file.write(json.dumps({"rtstage_automation": FORMAT_VERSION, "samplerate": self.samplerate}) + "\n")

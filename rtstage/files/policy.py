@@ -62,6 +62,7 @@ __all__ = [
     "set_activity",
     "file_mode",
     "io_error",
+    "write_failure",
 ]
 
 TEMP_PREFIX = ".rtstage-"
@@ -181,6 +182,35 @@ def io_error(path, exc, what="write"):
     else:
         reason = getattr(exc, "strerror", None) or str(exc)
     return WriteFailed(f"cannot {what} {path}: {reason}; nothing was written")
+
+
+def write_failure(path, tmp, exc):
+    """A :class:`WriteFailed` for an error a library raised while writing ``tmp`` (destined for ``path``).
+
+    libsndfile reports a full disk or a file-size limit as a bare error code;
+    the reason is recovered from the file system: free space in the folder,
+    and the temporary file's size against RLIMIT_FSIZE.
+    """
+    if isinstance(exc, OSError) and exc.errno is not None:
+        return io_error(path, exc)
+    import resource
+
+    folder = os.path.dirname(os.path.abspath(tmp or path))
+    try:
+        size = os.path.getsize(tmp) if tmp else 0
+    except OSError:
+        size = 0
+    soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+    if soft != resource.RLIM_INFINITY and size >= soft - 65536:
+        return io_error(path, OSError(errno.EFBIG, "File too large"))
+    try:
+        st = os.statvfs(folder)
+        if st.f_bavail * st.f_frsize < 1 << 20:
+            return io_error(path, OSError(errno.ENOSPC, "No space left on device"))
+    except OSError:
+        pass
+    detail = str(exc).strip() or type(exc).__name__
+    return WriteFailed(f"cannot write {path}: {detail}; nothing was written")
 
 
 def _identity(path):

@@ -97,6 +97,10 @@ class LiveEngine:
         Loop a file source instead of stopping at its end.
     tap : str or None
         Tap file path.
+    tap_write_paths : (str, str) or None
+        Where the tap audio and its gaps sidecar are actually written (the
+        output policy's temporary files, renamed by the caller); None writes
+        ``tap`` and its sidecar directly.
     callback : {'compiled', 'python'}
         Callback mode; ``python`` is for diagnosis only.
     settle_s : float
@@ -122,7 +126,8 @@ class LiveEngine:
 
     def __init__(self, settings, device=None, input_device=None, output_device=None, hostapi=None, samplerate=None,
                  blocksize=DEFAULT_BLOCKSIZE, channels=None, latency=None, source=None, loop=False, tap=None,
-                 callback="compiled", settle_s=1.0, stall_s=None, worker_load_thread=False, rtp_out=None):
+                 callback="compiled", settle_s=1.0, stall_s=None, worker_load_thread=False, rtp_out=None,
+                 tap_write_paths=None):
         self.requested = dict(device=device, input_device=input_device, output_device=output_device, hostapi=hostapi)
         self.settings = settings
         self.samplerate = samplerate
@@ -134,6 +139,7 @@ class LiveEngine:
         self.source_spec = parse_source(source) if source else None
         self.loop = bool(loop)
         self.tap_path = tap
+        self.tap_write_paths = tap_write_paths
         self.callback_mode = callback
         self.settle_s = float(settle_s)
         self.stall_s = stall_s
@@ -214,7 +220,8 @@ class LiveEngine:
             self.net_out = LiveRtpOutput(self.block, S.C_RING_HEAD, S.C_RING_TAIL, self.rtp_out_options,
                                          self.samplerate, self.channels, self.settings.bits, tap=self.tap_path, info=info)
         elif self.tap_path:
-            self.tap = self.tap_writer(self.tap_path, self.block, self.samplerate, self.settings.bits, info)
+            extra = {"write_paths": self.tap_write_paths} if self.tap_write_paths else {}
+            self.tap = self.tap_writer(self.tap_path, self.block, self.samplerate, self.settings.bits, info, **extra)
         self._prepared = True
         return self
 

@@ -52,10 +52,15 @@ class TapWriter:
         Word length (chooses PCM_16 or PCM_24).
     info : dict
         Extra plain data for the sidecar (settings, source).
+    write_paths : (str, str) or None
+        Where to write the audio and the sidecar instead of ``path`` and its
+        sidecar path (the temporary files of the output policy, renamed
+        into place by the caller).
     """
 
-    def __init__(self, path, block, samplerate, bits, info=None):
+    def __init__(self, path, block, samplerate, bits, info=None, write_paths=None):
         self.path = path
+        self._audio_path, self._sidecar_path = write_paths or (path, sidecar_path(path))
         self.block = block
         self.gaps = []
         self.info = dict(info or {})
@@ -64,7 +69,7 @@ class TapWriter:
         ext = os.path.splitext(path)[1].lower().lstrip(".")
         fmt = {"wav": "WAV", "flac": "FLAC", "aiff": "AIFF", "aif": "AIFF", "w64": "W64", "caf": "CAF"}.get(ext, "WAV")
         try:
-            self._file = sf.SoundFile(path, "w", int(samplerate), block.nchannels, subtype, format=fmt)
+            self._file = sf.SoundFile(self._audio_path, "w", int(samplerate), block.nchannels, subtype, format=fmt)
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
             raise RtstageError(f"cannot open tap file {path}: {exc}") from None
         self._chunk = np.zeros((CHUNK_FRAMES, block.nchannels), dtype=block.out_dtype)
@@ -114,7 +119,7 @@ class TapWriter:
             "ring_backlog_frames": int(self.block.ctl[C_RING_HEAD] - self.block.ctl[C_RING_TAIL]),
             "gaps": self.gaps,
         }
-        with open(sidecar_path(self.path), "w") as f:
+        with open(self._sidecar_path, "w") as f:
             json.dump({**summary, **self.info}, f, indent=1)
         if self.error is not None:
             raise RtstageError(f"tap file {self.path}: write failed: {self.error}")

@@ -24,7 +24,9 @@ over time and the level of each 100 ms window.
 """
 
 import math
+import contextlib
 import os
+import threading
 
 import numpy as np
 
@@ -206,27 +208,84 @@ def ntf_title(shaper_id, samplerate, design_samplerate_hz=None):
     return text
 
 
-def write_ntf_png(shaper_id, coefs, samplerate, path, design_samplerate_hz=None):
-    """The NTF figure of ``rtstage shaper plot --png``, the same as the report's ``shaper-ntf.png``."""
+def write_ntf_png(shaper_id, coefs, samplerate, path, design_samplerate_hz=None, plan=None):
+    """The NTF figure of ``rtstage shaper plot --png``, the same as the report's ``shaper-ntf.png``.
+
+    ``plan``: a checked :class:`rtstage.files.policy.OutputPlan` declaring
+    ``path`` (the caller commits); None writes through a plan of its own.
+    """
     plt = _pyplot()
-    fig, ax = plt.subplots(figsize=FIGSIZE)
+    with _through(plan, None, "", path, None, f"drawing {path}"):
+        fig, ax = plt.subplots(figsize=FIGSIZE)
+        try:
+            draw_ntf(ax, coefs, samplerate, label=shaper_id)
+            _style(ax, ntf_title(shaper_id, samplerate, design_samplerate_hz))
+            return _save(fig, path)
+        finally:
+            plt.close(fig)
+
+
+PLOT_NAMES = ("error-spectrum.png", "error-histogram.png", "noise-modulation.png", "shaper-ntf.png")
+"""The files :func:`write_plots` may write (declare them in an output plan)."""
+
+MEASURE_PLOT_NAMES = ("loudness.png", "levels.png")
+"""The files :func:`write_measure_plots` may write."""
+
+_target = threading.local()
+
+
+@contextlib.contextmanager
+def _through(plan, folder, prefix, path, names, what):
+    """Route every figure saved inside through the output policy: ``plan`` (the caller's) or one of our own.
+
+    Without a plan, ``path`` is a folder declared with ``names`` (or, when
+    ``names`` is None, a single file), created when missing, with existing
+    figures replaced; the plan is committed on success and discarded on failure.
+    """
+    from ..files.policy import OutputPlan
+
+    own = None
+    if plan is None:
+        own = plan = OutputPlan(what, overwrite=True)
+        if names is None:
+            plan.add_file(path, "figure")
+        else:
+            folder = plan.add_folder(path, "plot folder", names)
+        plan.check()
+    previous = getattr(_target, "value", None)
+    _target.value = (plan, folder, prefix)
     try:
-        draw_ntf(ax, coefs, samplerate, label=shaper_id)
-        _style(ax, ntf_title(shaper_id, samplerate, design_samplerate_hz))
-        return _save(fig, path)
+        yield
+        if own is not None:
+            own.commit()
+    except BaseException:
+        if own is not None:
+            own.discard()
+        raise
     finally:
-        plt.close(fig)
+        _target.value = previous
 
 
-def write_plots(report, directory, channel=0):
-    """Write the four PNG figures of ``report`` into ``directory``; returns their paths."""
+def write_plots(report, directory, channel=0, plan=None, folder=None, prefix=""):
+    """Write the four PNG figures of ``report`` into ``directory``; returns their paths.
+
+    With ``plan`` (a checked :class:`rtstage.files.policy.OutputPlan`) and
+    ``folder`` (the output folder declared in it with :data:`PLOT_NAMES`,
+    each under ``prefix`` when given), every figure goes through the output
+    policy and the caller commits the plan; without, a plan of this call
+    alone is used (the folder is created when missing, figures replaced).
+    """
+    with _through(plan, folder, prefix, directory, PLOT_NAMES, f"writing figures into {directory}"):
+        return _write_plots(report, directory, channel)
+
+
+def _write_plots(report, directory, channel):
     if "measure_version" in report:
         raise RtstageError("a measure report holds no added-noise figures; draw its plots with "
                            "'rtstage measure FILE --plot DIR'")
     if "error_spectrum_bands_hz" not in report or not report.get("channels"):
         raise RtstageError("not a meter report (no error spectrum or channels)")
     plt = _pyplot()
-    os.makedirs(directory, exist_ok=True)
     ch = report["channels"][channel]
     title = title_text(report, channel)
     rate = float(report["samplerate"])
@@ -353,10 +412,17 @@ def _modulation(plt, report, ch, dither, scale, coefs, title, directory):
     return _save_close(fig, plt, directory, "noise-modulation.png")
 
 
-def write_measure_plots(report, series, directory):
-    """``rtstage measure --plot``: ``loudness.png`` and ``levels.png``; returns their paths."""
+def write_measure_plots(report, series, directory, plan=None, folder=None):
+    """``rtstage measure --plot``: ``loudness.png`` and ``levels.png``; returns their paths.
+
+    ``plan`` and ``folder`` as for :func:`write_plots` (names :data:`MEASURE_PLOT_NAMES`).
+    """
+    with _through(plan, folder, "", directory, MEASURE_PLOT_NAMES, f"writing figures into {directory}"):
+        return _write_measure_plots(report, series, directory)
+
+
+def _write_measure_plots(report, series, directory):
     plt = _pyplot()
-    os.makedirs(directory, exist_ok=True)
     paths = []
     name = os.path.basename(report.get("file", ""))
     rate = rate_text(report["samplerate"])
@@ -413,17 +479,18 @@ def write_measure_plots(report, series, directory):
     return paths
 
 
-def _save(fig, path):
+def _save(fig, path, name=None):
+    """Save through the output plan set by :func:`_through` (atomic, checked up front)."""
     fig.tight_layout()
-    try:
-        fig.savefig(path, dpi=DPI)
-    except OSError as exc:
-        raise RtstageError(f"cannot write {path}: {exc.strerror}") from None
+    plan, folder, prefix = _target.value
+    target = plan.file_in(folder, os.path.join(prefix, name) if prefix else name) if folder is not None else path
+    with plan.atomic(target) as tmp:
+        fig.savefig(tmp, dpi=DPI, format="png")
     return path
 
 
 def _save_close(fig, plt, directory, name):
     try:
-        return _save(fig, os.path.join(directory, name))
+        return _save(fig, os.path.join(directory, name), name)
     finally:
         plt.close(fig)

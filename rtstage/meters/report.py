@@ -8,11 +8,9 @@ key changes meaning.  Undefined figures (no signal, too few samples) are
 import json
 import math
 import os
-import tempfile
 
 import numpy as np
 
-from ..errors import RtstageError
 
 REPORT_VERSION = 1
 """Version of the report's layout."""
@@ -48,32 +46,27 @@ def json_ready(value):
     return value
 
 
-def write_report(path, report):
-    """Write ``report`` as JSON to ``path`` atomically (temporary file, then rename).
+def write_report(path, report, plan=None):
+    """Write ``report`` as JSON to ``path`` through the output policy (atomic, umask mode).
 
     Parameters
     ----------
     path : str or os.PathLike
-        Destination; its directory must exist.
+        Destination; its folder must exist.
     report : dict
         A report from :meth:`rtstage.meters.MeterBank.report`.
+    plan : OutputPlan or None
+        A checked plan in which ``path`` is declared (the caller commits it);
+        None writes through a plan of its own that replaces an existing file.
     """
+    from ..files.policy import OutputPlan
+
     path = os.fspath(path)
-    directory = os.path.dirname(os.path.abspath(path))
     text = json.dumps(json_ready(report), indent=2, allow_nan=False) + "\n"
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".json.tmp", dir=directory)
-    except OSError as exc:
-        raise RtstageError(f"cannot write report {path}: {exc.strerror}") from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise RtstageError(f"cannot write report {path}: {exc.strerror}") from None
+    if plan is not None:
+        plan.write_text(path, text)
+        return
+    own = OutputPlan(f"writing the report {path}", overwrite=True)
+    own.add_file(path, "report")
+    with own:
+        own.write_text(path, text)
