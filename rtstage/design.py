@@ -218,6 +218,8 @@ def read_weighting_table(path):
             lines = f.read().splitlines()
     except OSError as exc:
         raise RtstageError(f"cannot read weighting table {path}: {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"weighting table {path}: not UTF-8 text (byte {exc.start})") from None
     rows = []
     for number, line in enumerate(lines, 1):
         text = line.split("#", 1)[0].replace(",", " ").split()

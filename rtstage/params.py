@@ -288,7 +288,7 @@ def validate_values(values, current=None, accept_unsafe=False, warn=None, source
     )
     settings.validate()
     if warn is not None:
-        message = _engine.unsafe_warning(settings, source)
+        message = _settings.unsafe_warning(settings, source)
         if message:
             warn(message)
     return {name: checked[name] for name in PARAMS if name in checked}

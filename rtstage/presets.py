@@ -62,6 +62,8 @@ def load_preset(name):
         raise RtstageError(f"preset {path}: cannot read ({exc.strerror})") from None
     except tomllib.TOMLDecodeError as exc:
         raise RtstageError(f"preset {path}: not valid TOML ({exc})") from None
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"preset {path}: not UTF-8 text (byte {exc.start})") from None
     values = {}
     for key, value in data.items():
         if key not in PRESET_FIELDS:
@@ -89,7 +91,7 @@ def settings_from(preset=None, **overrides):
     if preset:
         values.update(load_preset(preset))
         try:
-            EngineSettings(**values).validate()
+            EngineSettings(**values, accept_unsafe=bool(overrides.get("accept_unsafe"))).validate()
         except RtstageError as exc:
             field = next((k for k in values if f"{k}" in str(exc)), None)
             where = f", field '{field}'" if field else ""

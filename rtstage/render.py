@@ -126,12 +126,12 @@ def estimated_bytes(frames, channels, subtype, fmt):
     return int(frames) * int(channels) * width + 4096
 
 
-def open_input(input_path, accept_truncated=False):
+def open_input(input_path, accept_truncated=False, warn=log):
     """Open a sound file for reading after the chunk-level checks of :func:`rtstage.files.riff.check_input`.
 
     Returns ``(soundfile, layout)``; refuses (one line, exit status 2) a
-    missing, unreadable, truncated (unless ``accept_truncated``, which warns)
-    or empty file.
+    missing, unreadable, truncated (unless ``accept_truncated``, which warns
+    through ``warn``; None: silently) or empty file.
     """
     from .files.riff import InputRefused, check_input
 
@@ -141,7 +141,7 @@ def open_input(input_path, accept_truncated=False):
     if os.path.isdir(path):
         raise InputRefused(f"cannot read {path}: it is a folder")
     try:
-        layout = check_input(path, accept_truncated=accept_truncated, warn=log)
+        layout = check_input(path, accept_truncated=accept_truncated, warn=warn)
     except OSError as exc:
         raise InputRefused(f"cannot read {path}: {exc.strerror}") from None
     try:
@@ -173,7 +173,7 @@ def coding_history_text(settings):
 
 def render_file(
     input_path, output_path, settings, blocksize=DEFAULT_BLOCKSIZE, subtype=None, overwrite=False, observers=(),
-    automation=None, meters=None, plan=None, accept_truncated=False, new_bext=False, quiet=False,
+    automation=None, meters=None, plan=None, accept_truncated=False, new_bext=False, warn=log, quiet=False,
 ):
     """Requantize ``input_path`` into ``output_path``.
 
@@ -215,6 +215,8 @@ def render_file(
     new_bext : bool
         Give a WAV output a new ``bext`` chunk when the input has none (by
         default a ``bext`` is only carried, never invented).
+    warn : callable or None
+        Where the warning about an accepted truncated input goes (None: nowhere).
     quiet : bool
         No progress bar.
 
@@ -232,9 +234,9 @@ def render_file(
     libsndfile exposes.  See :mod:`rtstage.files.riff`.
     """
     from .files import riff
-    from .files.policy import OutputPlan, write_failure
+    from .files.policy import OutputPlan, check_interrupted, deferred_signals, write_failure
 
-    infile, layout = open_input(input_path, accept_truncated=accept_truncated)
+    infile, layout = open_input(input_path, accept_truncated=accept_truncated, warn=warn)
     with infile:
         check_stream_shape(infile.samplerate, infile.channels, input_path)
         settings = settings.resolved()
@@ -268,7 +270,8 @@ def render_file(
         try:
             with plan.atomic(output_path) as tmp_path:
                 try:
-                    with sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \
+                    with deferred_signals(), \
+                            sf.SoundFile(tmp_path, "w", infile.samplerate, infile.channels, subtype, format=fmt) as outfile, \
                             _Reader(infile, blocksize) as reader, \
                             _Writer(outfile, (blocksize, infile.channels), engine.dtype, info.float_out) as writer:
                         for name, value in tags.items():
@@ -281,6 +284,7 @@ def render_file(
                         if progress:
                             progress.start()
                         for inbuf, x in reader:
+                            check_interrupted()
                             n = x.shape[0]
                             frames_read += n
                             words = writer.acquire()

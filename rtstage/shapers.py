@@ -136,6 +136,8 @@ def shaper_from_toml(path):
         raise RtstageError(f"cannot read shaper file {path}: {exc.strerror}") from None
     except tomllib.TOMLDecodeError as exc:
         raise RtstageError(f"shaper file {path}: not valid TOML ({exc})") from None
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"shaper file {path}: not UTF-8 text (byte {exc.start})") from None
     coefs = data.get("coefs")
     if not isinstance(coefs, list) or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in coefs):
         raise RtstageError(f"shaper file {path}: field 'coefs' must be a list of numbers")

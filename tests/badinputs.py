@@ -272,6 +272,15 @@ def _wait_for_temp(folder, proc, timeout_s=60.0):
     return False
 
 
+CASE_TIMEOUT_S = 120
+
+
+def _read_all(stream, proc):
+    data = stream.read()
+    proc.wait(timeout=CASE_TIMEOUT_S)
+    return data
+
+
 def run_case(case, base):
     """Run one case in a fresh folder under ``base``; returns a :class:`Result`."""
     folder = tempfile.mkdtemp(prefix=case.name[:40] + "-", dir=base)
@@ -296,23 +305,29 @@ def run_case(case, base):
         proc = subprocess.Popen([sys.executable, "-m", "rtstage", *argv], cwd=folder, env=env,
                                 stdin=subprocess.PIPE, stdout=stdout, stderr=subprocess.PIPE,
                                 preexec_fn=preexec)
-        if case.close_stdout:
-            proc.stdout.close()
-        if case.signal is not None:
-            proc.stdin.close()
-            _wait_for_temp(mnt or folder, proc)
-            proc.send_signal(case.signal)
-            out = b""
-            err = proc.stderr.read()
-            proc.wait(timeout=120)
-        elif case.close_stdout:
-            proc.stdin.write(case.stdin)
-            proc.stdin.close()
-            err = proc.stderr.read()
-            proc.wait(timeout=120)
-            out = b""
-        else:
-            out, err = proc.communicate(case.stdin, timeout=120)
+        try:
+            if case.close_stdout:
+                proc.stdout.close()
+            if case.signal is not None:
+                proc.stdin.close()
+                _wait_for_temp(mnt or folder, proc)
+                proc.send_signal(case.signal)
+                out = b""
+                err = _read_all(proc.stderr, proc)
+            elif case.close_stdout:
+                try:
+                    proc.stdin.write(case.stdin)
+                    proc.stdin.close()
+                except BrokenPipeError:
+                    pass
+                out = b""
+                err = _read_all(proc.stderr, proc)
+            else:
+                out, err = proc.communicate(case.stdin, timeout=CASE_TIMEOUT_S)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+            return Result(case, None, "", f"timed out after {CASE_TIMEOUT_S} s", set(), CASE_TIMEOUT_S)
         elapsed = time.monotonic() - start
         after = snapshot(*roots)
         return Result(case, proc.returncode, out.decode("utf-8", "replace"), err.decode("utf-8", "replace"),
@@ -322,11 +337,20 @@ def run_case(case, base):
             _umount(mnt)
 
 
+def _guarded(case, base):
+    try:
+        return run_case(case, base)
+    except Exception as exc:  # a harness failure is reported on that case, not on all of them
+        import traceback
+
+        return Result(case, None, "", "harness: " + "".join(traceback.format_exception(exc)), set())
+
+
 def run_all(cases, base, workers=None):
     """Run every case on a thread pool; returns {name: Result}."""
     workers = workers or max(2, min(4, (os.cpu_count() or 2) + 1))
     with ThreadPoolExecutor(max_workers=workers) as pool:
-        results = list(pool.map(lambda c: run_case(c, base), cases))
+        results = list(pool.map(lambda c: _guarded(c, base), cases))
     return {r.case.name: r for r in results}
 
 

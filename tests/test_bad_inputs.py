@@ -95,10 +95,10 @@ CASES = [
     Case("render-plot-is-input", R("{d}/in.wav", "{d}/out.wav", "--plot", "{d}/in.wav"), 2, "not a folder", W),
     Case("render-plot-read-only", R("{d}/in.wav", "{d}/out.wav", "--plot", "{m}/plots"), 2, "cannot write in", W,
          mount="ro"),
-    Case("render-output-is-preset", R("{d}/in.wav", "{d}/exists.toml", "--preset", "{d}/exists.toml", "--overwrite"), 2,
-         "is the input", W + ("exists.toml",)),
-    Case("render-output-is-shaper-file", R("{d}/in.wav", "{d}/shaper-noid.toml", "--shaper", "{d}/shaper-noid.toml"), 2,
-         "", W + ("shaper-noid.toml",)),
+    Case("render-output-is-preset", R("{d}/in.wav", "{d}/preset.wav", "--preset", "{d}/preset.wav", "--overwrite"), 2,
+         "is the input", W + ("preset.wav",)),
+    Case("render-output-is-shaper-file", R("{d}/in.wav", "{d}/shaper.wav", "--shaper", "{d}/shaper.wav", "--overwrite"),
+         2, "is the input", W + ("shaper.wav",)),
     Case("render-report-is-automation", R("{d}/in.wav", "{d}/out.wav", "--automation", "{d}/auto-late.jsonl",
                                           "--report", "{d}/auto-late.jsonl", "--overwrite"), 2, "is the input",
          W + ("auto-late.jsonl",)),
@@ -167,8 +167,8 @@ CASES = [
          W + ("shaper-long.toml",)),
     Case("render-shaper-nan", R("{d}/in.wav", "{d}/out.wav", "--shaper", "{d}/shaper-nan.toml"), 2, "non-finite",
          W + ("shaper-nan.toml",)),
-    Case("render-shaper-no-id", R("{d}/in.wav", "{d}/out.wav", "--shaper", "{d}/shaper-noid.toml"), 2, "id",
-         W + ("shaper-noid.toml",)),
+    Case("render-shaper-empty-id", R("{d}/in.wav", "{d}/out.wav", "--shaper", "{d}/shaper-emptyid.toml"), 2, "field 'id'",
+         W + ("shaper-emptyid.toml",)),
     Case("render-shaper-non-utf8", R("{d}/in.wav", "{d}/out.wav", "--shaper", "{d}/shaper-nonutf8.toml"), 2,
          "shaper-nonutf8.toml", W + ("shaper-nonutf8.toml",)),
     Case("render-shaper-not-toml", R("{d}/in.wav", "{d}/out.wav", "--shaper", "{d}/shaper-notoml.toml"), 2,
@@ -245,9 +245,9 @@ CASES = [
     Case("shaper-plot-points-0", ["shaper", "plot", "flat", "--points", "0"], 2, "points"),
     Case("shaper-plot-points-negative", ["shaper", "plot", "flat", "--points", "-3"], 2, "points"),
     Case("shaper-plot-points-huge", ["shaper", "plot", "flat", "--points", "100000000"], 2, "points"),
-    Case("shaper-plot-rate-0", ["shaper", "plot", "flat", "--samplerate", "0"], 2, "samplerate"),
-    Case("shaper-plot-rate-nan", ["shaper", "plot", "flat", "--samplerate", "nan"], 2, "samplerate"),
-    Case("shaper-plot-rate-inf", ["shaper", "plot", "flat", "--samplerate", "inf"], 2, "samplerate"),
+    Case("shaper-plot-rate-0", ["shaper", "plot", "flat", "--samplerate", "0"], 2, "sample rate"),
+    Case("shaper-plot-rate-nan", ["shaper", "plot", "flat", "--samplerate", "nan"], 2, "sample rate"),
+    Case("shaper-plot-rate-inf", ["shaper", "plot", "flat", "--samplerate", "inf"], 2, "sample rate"),
     Case("shaper-plot-closed-stdout", ["shaper", "plot", "wannamaker-f9", "--points", "20000"], 0, "",
          close_stdout=True, lines=0),
     Case("shaper-plot-png-exists", ["shaper", "plot", "flat", "--png", "{d}/exists.png"], 2, "use --overwrite",
@@ -259,18 +259,18 @@ CASES = [
     Case("shaper-plot-bad-file", ["shaper", "plot", "{d}/shaper-bad.toml"], 2, "coefs", ("shaper-bad.toml",)),
     Case("shaper-plot-non-utf8", ["shaper", "plot", "{d}/shaper-nonutf8.toml"], 2, "shaper-nonutf8.toml",
          ("shaper-nonutf8.toml",)),
-    Case("shaper-list-rate-0", ["shaper", "list", "--samplerate", "0"], 2, "samplerate"),
-    Case("shaper-list-rate-nan", ["shaper", "list", "--samplerate", "nan"], 2, "samplerate"),
+    Case("shaper-list-rate-0", ["shaper", "list", "--samplerate", "0"], 2, "sample rate"),
+    Case("shaper-list-rate-nan", ["shaper", "list", "--samplerate", "nan"], 2, "sample rate"),
     Case("shaper-list-closed-stdout", ["shaper", "list"], 0, "", close_stdout=True, lines=0),
     *[Case(f"shaper-design-{name}", ["shaper", "design", *args], 2, expect)
       for name, args, expect in (
           ("taps-0", ["--samplerate", "48000", "--taps", "0"], "taps"),
           ("taps-99", ["--samplerate", "48000", "--taps", "99"], "taps"),
           ("taps-text", ["--samplerate", "48000", "--taps", "nine"], "--taps"),
-          ("rate-0", ["--samplerate", "0", "--taps", "5"], "samplerate"),
-          ("rate-negative", ["--samplerate", "-48000", "--taps", "5"], "samplerate"),
-          ("rate-nan", ["--samplerate", "nan", "--taps", "5"], "samplerate"),
-          ("rate-inf", ["--samplerate", "inf", "--taps", "5"], "samplerate"),
+          ("rate-0", ["--samplerate", "0", "--taps", "5"], "sample rate"),
+          ("rate-negative", ["--samplerate", "-48000", "--taps", "5"], "sample rate"),
+          ("rate-nan", ["--samplerate", "nan", "--taps", "5"], "sample rate"),
+          ("rate-inf", ["--samplerate", "inf", "--taps", "5"], "sample rate"),
           ("missing-taps", ["--samplerate", "48000"], "--taps"),
           ("weighting-unknown", ["--samplerate", "48000", "--taps", "5", "--weighting", "pink"], "--weighting"),
           ("max-gain-negative", ["--samplerate", "48000", "--taps", "5", "--max-gain-db", "-1"], "max"),
@@ -400,12 +400,15 @@ CASES = [
     Case("unknown-global-option", ["--frobnicate"], 2, "frobnicate"),
 ]
 
-FILES_NEEDED = {"shaper-good.toml", "table-good.txt"}
+FILES_NEEDED = {"shaper-good.toml", "table-good.txt", "preset.wav", "shaper.wav", "shaper-emptyid.toml"}
 # Fixture files some rows use beyond the shared table (valid inputs that the command must not overwrite).
 from badinputs import FILES  # noqa: E402
 
 FILES.setdefault("shaper-good.toml", lambda p: open(p, "w").write('id = "good"\ncoefs = [0.5]\n'))
 FILES.setdefault("table-good.txt", lambda p: open(p, "w").write("100 0\n1000 10\n10000 0\n"))
+FILES.setdefault("preset.wav", lambda p: open(p, "w").write("bits = 16\n"))  # a preset under an audio name
+FILES.setdefault("shaper.wav", lambda p: open(p, "w").write('id = "s"\ncoefs = [0.5]\n'))
+FILES.setdefault("shaper-emptyid.toml", lambda p: open(p, "w").write('id = ""\ncoefs = [0.5]\n'))
 for _case in CASES:
     needed = [a.split("/", 1)[1] for a in _case.argv if a.startswith("{d}/") and a.split("/", 1)[1] in FILES_NEEDED]
     _case.files = tuple(dict.fromkeys(_case.files + tuple(needed)))

@@ -400,7 +400,7 @@ def render_command(in_path, out_path):
     return [
         sys.executable, "-m", "rtstage", "render", in_path, out_path,
         "--bits", str(BENCH_BITS), "--dither", BENCH_DITHER, "--shaper", BENCH_SHAPER,
-        "--seed", str(BENCH_SEED), "--force",
+        "--seed", str(BENCH_SEED), "--overwrite",
     ]  # fmt: skip
 
 
@@ -455,7 +455,7 @@ def render_in_process(in_path, out_path):
     from rtstage import render as R
 
     settings = EngineSettings(bits=BENCH_BITS, dither=BENCH_DITHER, shaper=BENCH_SHAPER, seed=BENCH_SEED)
-    return R.render_file(in_path, out_path, settings, force=True)
+    return R.render_file(in_path, out_path, settings, overwrite=True)
 
 
 def subprocess_env():

@@ -5,15 +5,17 @@ Each subcommand lives in its own module of this package, which exposes
 taking the parsed arguments and returning the exit status).  Shared options
 are in :mod:`rtstage.cli.options`.  This package sits on top of every other
 layer; nothing in rtstage imports it.  Errors raised as
-:class:`rtstage.RtstageError` become one line on stderr and exit status 2.
+:class:`rtstage.RtstageError` become one line on stderr and their exit status
+(2 unless the error says otherwise); every other way out is mapped by
+:mod:`rtstage.files.exits` (1 run-time failure, 128+N for signal N, a crash
+log for an internal error), never a traceback.
 """
 
-import argparse
 import importlib
-import sys
 
 from .. import __version__
-from ..errors import RtstageError
+from ..files.exits import Parser, UsageError, run_guarded
+from ..files.policy import install_signal_handlers
 from .examples import add_all_examples
 
 COMMAND_MODULES = (
@@ -34,10 +36,12 @@ COMMAND_MODULES = (
 
 
 def build_parser():
-    """The full argument parser."""
-    parser = argparse.ArgumentParser(
+    """The full argument parser (usage errors become one line, see :class:`rtstage.files.exits.Parser`)."""
+    parser = Parser(
         prog="rtstage",
         description="Real-time output stage: dithered requantization to a shorter word length, live or offline.",
+        epilog="Exit status: 0 done, 1 run-time failure (I/O, unreachable server, internal error), "
+        "2 bad input or usage, 128+N interrupted by signal N (130 SIGINT, 143 SIGTERM, 129 SIGHUP).",
     )
     parser.add_argument("--version", action="version", version=f"rtstage {__version__}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -48,18 +52,20 @@ def build_parser():
 
 
 def main(argv=None):
-    """Run the command line; returns the exit status."""
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if getattr(args, "handler", None) is None:
-        parser.print_help(sys.stderr)
-        return 2
-    try:
-        return int(args.handler(args) or 0)
-    except RtstageError as exc:
-        from ..log import error_line
+    """Run the command line; returns the exit status.
 
-        print(error_line(exc), file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        return 130
+    Every way out is one line on stderr at most and a documented status
+    (:mod:`rtstage.files.exits`); SIGINT, SIGTERM and SIGHUP remove the
+    temporary files of unfinished outputs (:mod:`rtstage.files.policy`).
+    """
+    install_signal_handlers()
+
+    def command():
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if getattr(args, "handler", None) is None:
+            names = ", ".join(sorted(parser._subparsers._group_actions[0].choices))
+            raise UsageError(f"give a command: {names} ('rtstage --help' describes them)")
+        return args.handler(args)
+
+    return run_guarded(command, argv=None if argv is None else ["rtstage", *argv])

@@ -15,6 +15,7 @@ table, no audio device needed.
 """
 
 import json
+import math
 import os
 import socket
 import subprocess
@@ -27,6 +28,7 @@ import soundfile as sf
 
 from .. import demo
 from ..errors import RtstageError
+from ..files.exits import add_overwrite_options
 from ..log import log
 from ..render import render_array, words_to_float
 from ..settings import EngineSettings
@@ -61,7 +63,38 @@ def register(subparsers):
     p.add_argument("--blocksize", type=int, default=256, help="frames per callback (default 256)")
     p.add_argument("--out", help="report folder (default: a new folder under the system's temporary directory)")
     p.add_argument("--offline", action="store_true", help="render offline and print a table instead of running live")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_demo)
+
+
+MAX_DEMO_SECONDS = 3600.0
+"""Longest programme the demo generates (it is held in memory)."""
+
+
+def check_numbers(args):
+    """Refuse, before anything is printed or written, numbers the demo cannot use."""
+    from ..settings import MAX_SAMPLERATE, MIN_SAMPLERATE, SEED_MAX
+
+    if not (math.isfinite(args.seconds) and 0.0 < args.seconds <= MAX_DEMO_SECONDS):
+        raise RtstageError(f"--seconds must be more than 0 and at most {MAX_DEMO_SECONDS:g}, got {args.seconds:g}")
+    if not MIN_SAMPLERATE <= args.samplerate <= MAX_SAMPLERATE:
+        raise RtstageError(f"--samplerate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {args.samplerate}")
+    if args.seconds < 0.5:
+        raise RtstageError(f"--seconds must be at least 0.5 (three passes of the programme), got {args.seconds:g}")
+    if not 0 <= args.seed <= SEED_MAX:
+        raise RtstageError(f"seed must be an integer from 0 to 2^64-1, got {args.seed}")
+    if not 1 <= args.blocksize <= 8192:
+        raise RtstageError(f"--blocksize must be between 1 and 8192 frames, got {args.blocksize}")
+
+
+def _demo_plan(args, names, what):
+    """The output plan of the --out folder (checked): refuses before any audio work."""
+    from ..files.policy import OutputPlan
+
+    plan = OutputPlan(what, overwrite=args.overwrite)
+    folder = plan.add_folder(args.out, "--out folder", names)
+    plan.check()
+    return plan, folder
 
 
 def _level_dbfs(x):
@@ -81,6 +114,7 @@ def _deep_tone_dbfs(y, samplerate, start):
 
 def run_demo(args):
     """Handler of ``rtstage demo``."""
+    check_numbers(args)
     if args.offline:
         return run_offline(args)
     return run_live(args)
@@ -90,11 +124,19 @@ def run_offline(args):
     """Render the programme with each dither and print a table on stdout."""
     from ..meters import MeterBank
 
+    from ..engine import Engine
+
+    plan = None
+    if args.out:
+        ids = [Engine(EngineSettings(16, dither, shaper, seed=args.seed), 1, args.samplerate).settings.shaper_id
+               for dither, shaper in OFFLINE_SETTINGS]
+        names = ["programme.wav"] + [f"out-{dither}-{sid}.wav" for (dither, _), sid in zip(OFFLINE_SETTINGS, ids)]
+        plan, _ = _demo_plan(args, names, f"writing the demo into {args.out}")
     x = demo.overnight_programme(args.samplerate, args.seconds)
     deep_start = int(0.75 * x.shape[0])
-    if args.out:
-        os.makedirs(args.out, exist_ok=True)
-        sf.write(os.path.join(args.out, "programme.wav"), x, args.samplerate, subtype="FLOAT")
+    if plan is not None:
+        with plan.atomic(os.path.join(args.out, "programme.wav")) as tmp:
+            sf.write(tmp, x, args.samplerate, subtype="FLOAT", format="WAV")
     print(f"overnight feed, {args.seconds:g} s at {args.samplerate} Hz, requantized to 16 bits (seed {args.seed})")
     print(f"deep tone in the input: {demo.DEEP_TONE_DBFS:.1f} dBFS peak, 1 LSB = {20*np.log10(2.0**-15):.1f} dBFS")
     print("added noise: RMS in dBFS (AES17), channel 1; modulation: spread of its power over the input's position")
@@ -117,8 +159,11 @@ def run_offline(args):
         shaper_id = engine.settings.shaper_id
         print(f"{dither:<8}{shaper_id:<16}{noise['unweighted']:>18.1f}{noise['a_weighted']:>10.1f}{noise['itu468']:>12.1f}"
               f"{mod_text:>11}{tone_text:>11}")
-        if args.out:
-            sf.write(os.path.join(args.out, f"out-{dither}-{shaper_id}.wav"), words, args.samplerate, subtype="PCM_16")
+        if plan is not None:
+            with plan.atomic(os.path.join(args.out, f"out-{dither}-{shaper_id}.wav")) as tmp:
+                sf.write(tmp, words, args.samplerate, subtype="PCM_16", format="WAV")
+    if plan is not None:
+        plan.commit()
     return 0
 
 
@@ -165,8 +210,14 @@ def run_live(args):
     from ..meters import MeterBank, write_report
     from ..shapers import get_shaper
 
-    out = args.out or tempfile.mkdtemp(prefix="rtstage-demo-")
-    os.makedirs(out, exist_ok=True)
+    from ..meters.plots import PLOT_NAMES
+
+    if args.out is None:
+        args.out = tempfile.mkdtemp(prefix="rtstage-demo-")
+    out = args.out
+    names = ["programme.wav", "tap.wav", "tap.wav.gaps.json", "changes.jsonl", "status.json", "report.json"]
+    names += [os.path.join(f"pass-{i}", n) for i in (1, 2, 3) for n in PLOT_NAMES]
+    plan, folder = _demo_plan(args, names, f"running the demo into {out}")
     samplerate = args.samplerate
     one_pass = demo.overnight_programme(samplerate, args.seconds / 3.0)
     x = np.concatenate([one_pass] * 3)
@@ -175,10 +226,9 @@ def run_live(args):
     tap_path = os.path.join(out, "tap.wav")
     changes_path = os.path.join(out, "changes.jsonl")
     status_path = os.path.join(out, "status.json")
-    for path in (tap_path, changes_path, status_path):
-        if os.path.exists(path):
-            os.unlink(path)
-    sf.write(programme_path, x, samplerate, subtype="DOUBLE")
+    with plan.atomic(programme_path) as tmp:
+        sf.write(tmp, x, samplerate, subtype="DOUBLE", format="WAV")
+    plan.commit()  # the live engine reads it; tap, changes and status are written by the engine's own policy
     passes = _passes(samplerate)
 
     server = None
@@ -194,7 +244,7 @@ def run_live(args):
         sys.executable, "-m", "rtstage", "run", "--source", programme_path, "--tap", tap_path,
         "--preset", LIVE_PRESET, "--dither", "rpdf", "--seed", str(args.seed), "--blocksize", str(args.blocksize),
         "--duration", str(args.seconds + 30.0), "--control-port", str(port), "--automation-log", changes_path,
-        "--status-file", status_path, *device,
+        "--status-file", status_path, *device, *(["--overwrite"] if args.overwrite else []),
     ]
     log("starting the live engine: " + " ".join(cmd[2:]))
     proc = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL)
@@ -252,8 +302,9 @@ def run_live(args):
         report["pass"] = label
         report["first_frame"] = a
         reports.append(report)
-    write_report(os.path.join(out, "report.json"), {"passes": reports, "tap_equals_offline_render": identical})
-    _plots(out, reports)
+    write_report(os.path.join(out, "report.json"), {"passes": reports, "tap_equals_offline_render": identical}, plan=plan)
+    _plots(out, reports, plan, folder)
+    plan.commit()
 
     print(f"{'pass':<34}{'added noise dBFS':>17}{'A-wtd':>8}{'noise mod dB':>14}")
     for report in reports:
@@ -266,12 +317,12 @@ def run_live(args):
     return 0 if identical else 1
 
 
-def _plots(out, reports):
+def _plots(out, reports, plan, folder):
     """The meter figures of each pass into ``out/pass-N/`` (needs matplotlib; skipped with a note without)."""
     try:
         from ..meters.plots import write_plots
 
         for i, report in enumerate(reports):
-            write_plots(report, os.path.join(out, f"pass-{i + 1}"))
+            write_plots(report, os.path.join(out, f"pass-{i + 1}"), plan=plan, folder=folder, prefix=f"pass-{i + 1}")
     except RtstageError as exc:
         log(f"no plots: {exc}")

@@ -19,6 +19,7 @@ import os
 import sys
 
 from ..errors import RtstageError
+from ..files.exits import add_overwrite_options
 from ..log import log
 from ..settings import new_seed
 from .options import positive_float, seed_value
@@ -81,7 +82,7 @@ def register(subparsers):
     p.add_argument("--channels", type=int, default=2, help="channels (default 2)")
     p.add_argument("--seconds", type=positive_float, default=10.0,
                    help="length, rounded to the sequence's grid (default 10)")
-    p.add_argument("--force", action="store_true", help="replace an existing file")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_generate)
     _one_line_errors(p)
 
@@ -120,7 +121,7 @@ def register(subparsers):
     p.add_argument("--capture", metavar="FILE.wav", help="also write the recording (float, exact) here")
     p.add_argument("--report", metavar="R.json", help="write the JSON report here")
     p.add_argument("--json", action="store_true", help="print the JSON report on stdout instead of the summary")
-    p.add_argument("--force", action="store_true", help="replace an existing capture file")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_live)
     _one_line_errors(p)
 
@@ -149,7 +150,7 @@ def run_generate(args):
     seq.check_shape(args.bits, args.samplerate, args.channels, seq.sequence_frames(args.samplerate, 1.0))
     frames = seq.sequence_frames(args.samplerate, args.seconds)
     log(seq.CAUTION)
-    write_sequence(args.output, args.seed, args.bits, args.samplerate, args.channels, frames, force=args.force)
+    write_sequence(args.output, args.seed, args.bits, args.samplerate, args.channels, frames, force=args.overwrite)
     log(f"wrote {args.output}: {frames} frames ({frames / args.samplerate:.3f} s), {args.channels} ch, "
         f"{args.bits}-bit words, {args.samplerate} Hz, seed {args.seed}")
     return 0
@@ -207,8 +208,8 @@ def run_live(args):
     seq.check_shape(args.bits, args.samplerate, args.channels, frames)
     if args.blocksize < 1 or args.blocksize > 1 << 16:
         raise RtstageError(f"blocksize must be 1..65536 frames, got {args.blocksize}")
-    if args.capture and os.path.exists(args.capture) and not args.force:
-        raise RtstageError(f"{args.capture} exists; use --force to replace it")
+    if args.capture and os.path.exists(args.capture) and not args.overwrite:
+        raise RtstageError(f"{args.capture} exists; use --overwrite to replace it")
     log(seq.CAUTION)
     capture, figures = run_linktest(seed, args.bits, args.samplerate, args.channels, frames,
                                     output_device=args.output_device, input_device=args.input_device,

@@ -10,6 +10,7 @@ import argparse
 from ..control import DEFAULT_CONTROL_PORT
 from ..dither import DITHER_KINDS
 from ..errors import RtstageError
+from ..files.exits import refuse_force
 from ..presets import settings_from
 
 
@@ -25,7 +26,7 @@ def seed_value(text):
 
 
 def add_engine_options(parser):
-    """Add --preset, --bits, --dither, --shaper, --seed, --gain-db, --dither-scale, --force."""
+    """Add --preset, --bits, --dither, --shaper, --seed, --gain-db, --dither-scale, --accept-unsafe-shaping."""
     group = parser.add_argument_group("engine")
     group.add_argument("--preset", help="preset id from presets/ or a path to a preset .toml")
     group.add_argument("--bits", type=int, help="target word length, 2..24 (default 16)")
@@ -34,13 +35,24 @@ def add_engine_options(parser):
     group.add_argument("--seed", type=seed_value, help="dither seed (default: random, and logged)")
     group.add_argument("--gain-db", type=float, help="gain before the quantizer in dB (default 0)")
     group.add_argument("--dither-scale", type=float, help="expert: dither amplitude relative to the textbook amplitude")
-    group.add_argument("--force", action="store_true", help="accept settings theory marks unsafe, and replace existing outputs")
+    group.add_argument("--accept-unsafe-shaping", action="store_true",
+                       help="accept what theory marks unsafe: shaping without dither, or a non-i.i.d. dither inside a "
+                       "feedback shaper (Lipshitz, Wannamaker & Vanderkooy, JAES 2004); every use warns")
+    refuse_force(parser)
     return group
 
 
-def settings_from_args(args):
-    """Resolved EngineSettings from parsed options (a missing seed is drawn here)."""
-    return settings_from(
+def settings_from_args(args, warn=None):
+    """Resolved EngineSettings from parsed options (a missing seed is drawn here).
+
+    When ``--accept-unsafe-shaping`` lets an unsafe combination through,
+    ``warn`` (default: the log) gets one line naming the risk, its source
+    (the preset or the command line) and the reference.
+    """
+    from ..log import log
+    from ..settings import unsafe_warning
+
+    settings = settings_from(
         args.preset,
         bits=args.bits,
         dither=args.dither,
@@ -48,8 +60,26 @@ def settings_from_args(args):
         seed=args.seed,
         gain_db=args.gain_db,
         dither_scale=args.dither_scale,
-        force=args.force or None,
+        accept_unsafe=args.accept_unsafe_shaping or None,
     ).resolved()
+    from_preset = args.preset and (args.dither is None or args.shaper is None)
+    message = unsafe_warning(settings, f"preset {args.preset}" if from_preset else "the command line")
+    if message:
+        (warn or log)(message)
+    return settings
+
+
+def input_files_of(args):
+    """The files the engine options read (preset and shaper files), for the output policy."""
+    from ..presets import preset_path
+
+    files = []
+    if getattr(args, "preset", None):
+        files.append(preset_path(args.preset))
+    shaper = getattr(args, "shaper", None)
+    if shaper and (shaper.endswith(".toml") or "/" in shaper):
+        files.append(shaper)
+    return files
 
 
 def positive_float(text):

@@ -41,10 +41,9 @@ def run_pipe(args):
         log(f"seed {settings.seed} (pass --seed {settings.seed} to reproduce)")
     result = pipe_stream(engine, sys.stdin.buffer, sys.stdout.buffer, args.in_format, args.out_format, args.blocksize)
     if result.reader_closed:
-        # The reader went away: stop quietly, and keep Python from complaining at exit.
+        # The reader went away (``| head``): stop quietly, and keep Python from complaining at exit.
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
-        log(f"output closed by the reader after {result.frames} frames")
         return 0
     if result.trailing_bytes:
         frame_bytes = pcm.bytes_per_sample(args.in_format) * args.channels

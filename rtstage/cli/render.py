@@ -8,16 +8,8 @@ import sys
 from ..errors import RtstageError
 from ..log import log
 from ..render import DEFAULT_BLOCKSIZE, SUBTYPES, render_file, report_counts, shaper_warnings
-from .options import add_engine_options, check_blocksize, settings_from_args
-
-
-def _input_info(path):
-    import soundfile as sf
-
-    try:
-        return sf.info(path)
-    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-        raise RtstageError(f"cannot read {path}: {exc}") from None
+from ..files.exits import add_overwrite_options
+from .options import add_engine_options, check_blocksize, input_files_of, settings_from_args
 
 
 def register(subparsers):
@@ -40,51 +32,82 @@ def register(subparsers):
     p.add_argument("--quiet", action="store_true", help="no log lines or progress bar on stderr (errors still appear)")
     p.add_argument("--json", action="store_true",
                    help="print one JSON summary on stdout: frames, settings, seed, clipped, replaced, warnings")
+    p.add_argument("--accept-truncated", action="store_true",
+                   help="render a WAV/AIFF whose data is shorter than its header declares (warns); refused by default")
+    p.add_argument("--new-bext", action="store_true",
+                   help="give a WAV output a bext chunk (EBU Tech 3285) when the input has none; an input's bext is "
+                   "always carried, with one CodingHistory line added (EBU R 98)")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_render)
 
 
 def run_render(args):
     """Handler of ``rtstage render``."""
+    from ..files.policy import OutputPlan
+    from ..render import _output_format, default_subtype, estimated_bytes, open_input
+
     check_blocksize(args.blocksize)
-    if not os.path.exists(args.input):
-        raise RtstageError(f"cannot read {args.input}: no such file")
-    settings = settings_from_args(args)
+    say = (lambda message: None) if args.quiet else log
+    early = []
+    settings = settings_from_args(args, warn=early.append)
+    infile, _layout = open_input(args.input, accept_truncated=args.accept_truncated, warn=early.append)
+    with infile:
+        frames, channels, samplerate = infile.frames, infile.channels, infile.samplerate
     automation = None
     if args.automation:
-        from ..control.automation import load_automation
+        from ..control.automation import load_automation, review_automation
 
-        info = _input_info(args.input)
-        automation = load_automation(args.automation, samplerate=info.samplerate)
+        automation = load_automation(args.automation, samplerate=samplerate)
         if (args.report or args.plot) and any(set(values) & {"bits", "dither", "shaper", "dither_scale"} for _, values in automation):
             raise RtstageError("--report and --plot cannot follow automation that changes bits, dither, dither_scale or shaper "
                                "(the predicted noise would change mid-file); render the sections separately")
-    say = (lambda message: None) if args.quiet else log
+        review_automation(automation, settings, frames, args.automation, early.append)
     target = None
     if args.loudness_target:
         from ..meters.loudness import parse_target
 
         target = parse_target(args.loudness_target)
+    # Every output declared and checked before any audio work; all renamed into place together at the end.
+    plan = OutputPlan(f"rendering {args.input} to {args.output}", overwrite=args.overwrite,
+                      inputs=[args.input, args.automation, *input_files_of(args)])
+    fmt = _output_format(args.output)
+    subtype = (args.subtype or default_subtype(settings.bits)).upper()
+    plan.add_file(args.output, "output", size_bytes=estimated_bytes(frames, channels, subtype, fmt))
+    if args.report:
+        plan.add_file(args.report, "--report")
+    plot_folder = None
+    if args.plot:
+        from ..meters.plots import PLOT_NAMES
+
+        plot_folder = plan.add_folder(args.plot, "--plot folder", PLOT_NAMES)
     meters = None
     if args.report or args.plot or target is not None:
         from ..meters import MeterBank
 
         meters = functools.partial(MeterBank.for_engine, loudness_target=target)
-    result = render_file(args.input, args.output, settings, blocksize=args.blocksize, subtype=args.subtype,
-                         force=args.force, automation=automation, meters=meters, quiet=args.quiet)
+    with plan.check():
+        for message in early:
+            log(message)  # warnings are printed even with --quiet
+        result = render_file(args.input, args.output, settings, blocksize=args.blocksize, subtype=args.subtype,
+                             automation=automation, meters=meters, quiet=args.quiet, plan=plan,
+                             accept_truncated=True, new_bext=args.new_bext, warn=None)
+        report = result.meter.report() if result.meter is not None else None
+        if args.report:
+            from ..meters import write_report
+
+            write_report(args.report, report, plan=plan)
+        if args.plot:
+            from ..meters.plots import write_plots
+
+            write_plots(report, args.plot, plan=plan, folder=plot_folder)
     engine = result.engine
     warnings = shaper_warnings(engine.settings, engine.samplerate, result.peak_dbfs)
     for message in warnings:
         say(message)
-    report = result.meter.report() if result.meter is not None else None
     if args.report:
-        from ..meters import write_report
-
-        write_report(args.report, report)
         say(f"wrote the meter report {args.report}")
     if args.plot:
-        from ..meters.plots import write_plots
-
-        say(f"wrote {', '.join(write_plots(report, args.plot))}")
+        say(f"wrote the figures into {args.plot}")
     loudness = report["loudness"] if report is not None else None
     if loudness is not None and target is not None:
         from ..meters.loudness import loudness_line

@@ -4,6 +4,7 @@ import json
 import os
 
 from ..errors import RtstageError
+from ..files.exits import add_overwrite_options
 from ..log import log
 
 
@@ -20,6 +21,7 @@ def register(subparsers):
     p.add_argument("file", help="report JSON")
     p.add_argument("--plot", metavar="DIR", help="write the figures into DIR")
     p.add_argument("--channel", type=int, default=1, help="channel to plot, from 1 (default 1)")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_report)
 
 
@@ -31,7 +33,7 @@ def reports_in(obj):
         return [("", obj["meters"])]
     if isinstance(obj.get("passes"), list):
         return [(f"pass-{i + 1}", r) for i, r in enumerate(obj["passes"])]
-    raise RtstageError("no meter report found (expected 'channels', 'meters' or 'passes')")
+    raise RtstageError("no 'channels', 'meters' or 'passes' key")
 
 
 def summary_lines(label, report):
@@ -59,32 +61,79 @@ def summary_lines(label, report):
     return lines
 
 
-def run_report(args):
-    """Handler of ``rtstage report``: summary on stdout, figures into --plot DIR."""
+def read_report(path):
+    """The JSON object of a report file, or a one-line refusal saying what the file is instead."""
+    if os.path.isdir(path):
+        raise RtstageError(f"{path} is a folder, not a meter report")
     try:
-        with open(args.file) as f:
-            obj = json.load(f)
+        with open(path, "rb") as f:
+            data = f.read()
     except OSError as exc:
-        raise RtstageError(f"cannot read {args.file}: {exc.strerror}") from None
+        raise RtstageError(f"cannot read {path}: {exc.strerror}") from None
+    if data[:4] in (b"RIFF", b"RF64", b"FORM", b"fLaC", b"OggS"):
+        raise RtstageError(f"{path} is not a meter report: it is a sound file (reports are the JSON of 'rtstage render --report')")
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"{path} is not a meter report: not UTF-8 text (byte {exc.start})") from None
+    try:
+        obj = json.loads(text)
     except json.JSONDecodeError as exc:
-        raise RtstageError(f"{args.file}: not valid JSON ({exc.msg})") from None
-    found = reports_in(obj)
-    if isinstance(obj, dict) and "measure_version" in obj:
+        raise RtstageError(f"{path} is not a meter report: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+    if not isinstance(obj, dict):
+        raise RtstageError(f"{path} is not a meter report: a JSON {type(obj).__name__}, not an object")
+    return obj
+
+
+def _check_report(path, label, report):
+    channels = report.get("channels")
+    if not isinstance(channels, list) or not all(isinstance(ch, dict) for ch in channels):
+        raise RtstageError(f"{path} is not a meter report: 'channels' is not a list of channel entries")
+    for ch in channels:
+        for key in ("added_noise_dbfs", "predicted_noise_dbfs"):
+            if not isinstance(ch.get(key), dict):
+                raise RtstageError(f"{path} is not a meter report: a channel has no '{key}' object")
+
+
+def run_report(args):
+    """Handler of ``rtstage report``: summary on stdout, figures into --plot DIR (through the output policy)."""
+    obj = read_report(args.file)
+    if "measure_version" in obj:
         # A report of 'rtstage measure': its summary (its plots need the file: rtstage measure FILE --plot DIR).
         from ..meters.measure import summary_lines as measure_lines
 
-        print("\n".join(measure_lines(obj)))
         if args.plot:
             raise RtstageError(f"{args.file} is a measure report: draw its plots with 'rtstage measure {obj.get('file')} --plot DIR'")
+        print("\n".join(measure_lines(obj)))
         return 0
+    try:
+        found = reports_in(obj)
+    except RtstageError as exc:
+        raise RtstageError(f"{args.file} is not a meter report: {exc}") from None
+    for label, report in found:
+        _check_report(args.file, label, report)
+    plan = None
+    if args.plot:
+        from ..files.policy import OutputPlan
+        from ..meters.plots import PLOT_NAMES
+
+        plan = OutputPlan(f"writing the figures of {args.file}", inputs=[args.file], overwrite=args.overwrite)
+        names = [os.path.join(label, name) if label else name for label, _ in found for name in PLOT_NAMES]
+        top = plan.add_folder(args.plot, "--plot folder", names)
+        plan.check()
     for label, report in found:
         if not 1 <= args.channel <= len(report["channels"]):
             raise RtstageError(f"channel {args.channel} is not in the report (1..{len(report['channels'])})")
-        print("\n".join(summary_lines(label, report)))
-    if args.plot:
+    lines = []
+    for label, report in found:
+        lines.extend(summary_lines(label, report))
+    if plan is not None:
         from ..meters.plots import write_plots
 
-        for label, report in found:
-            paths = write_plots(report, os.path.join(args.plot, label) if label else args.plot, channel=args.channel - 1)
-            log(f"wrote {', '.join(paths)}")
+        with plan:
+            for label, report in found:
+                write_plots(report, os.path.join(args.plot, label) if label else args.plot, channel=args.channel - 1,
+                            plan=plan, folder=top, prefix=label)
+        log(f"wrote the figures into {args.plot}")
+    print("\n".join(lines))
     return 0

@@ -63,10 +63,10 @@ def is_deviceless(args):
 
 
 def check_outputs(args):
-    """Refuse existing output files without --force."""
+    """Refuse existing output files without --overwrite (the output policy checks the rest at start)."""
     for path, what in ((args.tap, "tap file"), (getattr(args, "rtp_sdp", None), "SDP file")):
-        if path and os.path.exists(path) and not args.force:
-            raise RtstageError(f"{what} {path} exists; use --force to replace it")
+        if path and os.path.exists(path) and not args.overwrite:
+            raise RtstageError(f"{what} {path} exists; use --overwrite to replace it")
 
 
 class Announcements:
@@ -132,8 +132,8 @@ def run_deviceless(args, settings, control_wiring):
 
         source = parse_source(args.source)
     check_outputs(args)
-    if args.automation_log and os.path.exists(args.automation_log) and not args.force:
-        raise RtstageError(f"automation log {args.automation_log} exists; use --force to replace it")
+    if args.automation_log and os.path.exists(args.automation_log) and not args.overwrite:
+        raise RtstageError(f"automation log {args.automation_log} exists; use --overwrite to replace it")
     if opts is not None:
         log(NET_CAUTION)
     engine = NetEngine(settings, source, samplerate=args.samplerate, channels=args.channels, rtp_out=opts,
@@ -207,7 +207,11 @@ class StatusLine:
 
 def write_status(args, status):
     text = json.dumps(status)
-    if args.status_file:
+    if args.status_file and getattr(args, "output_plan", None) is not None:
+        from .run import write_status_file
+
+        write_status_file(args, json.dumps(status))
+    elif args.status_file:
         with open(args.status_file, "w") as f:
             f.write(text + "\n")
     else:

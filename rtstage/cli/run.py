@@ -6,6 +6,7 @@ import sys
 
 from ..errors import RtstageError
 from ..log import log
+from ..files.exits import add_overwrite_options
 from .options import (add_control_arguments, add_engine_options, add_midi_arguments, midi_from_args, positive_float,
                       server_from_args, settings_from_args)
 from .rtp import (NET_CAUTION, Announcements, add_rtp_arguments, check_outputs, is_deviceless, rtp_out_options,
@@ -64,6 +65,7 @@ def register(subparsers):
     add_rtp_arguments(run)
     from ..service.runner import add_service_arguments
 
+    add_overwrite_options(run)
     add_service_arguments(run)  # last: it defers the defaults a feed file may set
     run.set_defaults(handler=run_command)
 
@@ -78,8 +80,15 @@ def run_command(args):
 
     in_journal = use_journal()
     hold_reload_signal()
+    if args.source is None and args.loop:
+        raise RtstageError("--loop needs a --source file")
+    if args.blocksize < 1 or args.blocksize > 1 << 16:
+        raise RtstageError(f"blocksize must be between 1 and 65536 frames, got {args.blocksize}")
+    if not 0 <= args.control_port < 65536:
+        raise RtstageError(f"--control-port must be 0 (off) or 1..65535, got {args.control_port}")
     feed = load_run_feed(args)
     settings = settings_with_feed(settings_from_args(args), feed)
+    args.output_plan = check_run_outputs(args)
     if is_deviceless(args):
         return run_deviceless(args, settings, ControlWiring)
     if args.source and is_net_source(args.source):
@@ -89,8 +98,6 @@ def run_command(args):
     check_outputs(args)
     if rtp_out is not None:
         log(NET_CAUTION)
-    if args.tap and os.path.exists(args.tap) and not args.force:
-        raise RtstageError(f"tap file {args.tap} exists; use --force to replace it")
     if args.source is None and args.loop:
         raise RtstageError("--loop needs a --source file")
     engine = LiveEngine(
@@ -106,9 +113,6 @@ def run_command(args):
         engine.loudness_target = parse_target(args.loudness_target)  # read when the meter thread starts
     if args.callback == "python":
         log("warning: --callback python runs Python in the audio thread (diagnosis only); expect dropouts")
-    for path, what in ((args.automation_log, "automation log"),):
-        if path and os.path.exists(path) and not args.force:
-            raise RtstageError(f"{what} {path} exists; use --force to replace it")
     engine.prepare()
     from ..render import shaper_warnings
 
@@ -139,11 +143,49 @@ def run_command(args):
     _headroom_warning(status.get("meters"))
     text = json.dumps(status)
     if args.status_file:
-        with open(args.status_file, "w") as f:
-            f.write(text + "\n")
+        write_status_file(args, text)
     else:
         print(text, file=sys.stderr, flush=True)
     return 0
+
+
+def check_run_outputs(args):
+    """Check every output of ``rtstage run`` with the output policy before any device opens.
+
+    Refuses (one line, exit status 2) an output that is or resolves to an
+    input (the source file, preset, shaper, feed file) or another output, an
+    existing file without ``--overwrite``, a folder, a missing or read-only
+    folder; a source file that is truncated or holds no frames.  Returns the
+    checked plan (the status file is written through it).
+    """
+    from ..files.policy import OutputPlan
+    from ..live.sources import parse_source
+    from ..live.tap import sidecar_path
+    from .options import input_files_of
+
+    source_file = None
+    if args.source is not None and ":" not in args.source.split("/")[0] and parse_source(args.source).kind == "file":
+        from ..render import open_input
+
+        source_file = args.source
+        open_input(source_file)[0].close()
+    inputs = [source_file, getattr(args, "feed", None), *input_files_of(args)]
+    plan = OutputPlan("running the live engine", inputs=inputs, overwrite=args.overwrite)
+    for path, what in ((args.tap, "--tap"), (args.tap and sidecar_path(args.tap), "--tap gaps sidecar"),
+                       (args.automation_log, "--automation-log"), (args.status_file, "--status-file"),
+                       (getattr(args, "rtp_sdp", None), "--rtp-sdp")):
+        if path:
+            plan.add_file(path, what)
+    plan.check()
+    plan.finish()  # the checks are done; the status file is written through the plan at the end
+    return plan
+
+
+def write_status_file(args, text):
+    """Write the final status through the output policy (atomic; checked at start)."""
+    plan = args.output_plan
+    with plan:
+        plan.write_text(args.status_file, text + "\n")
 
 
 def _headroom_warning(meters):

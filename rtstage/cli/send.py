@@ -1,6 +1,7 @@
 """``rtstage send``: one request to a running rtstage, or an interactive session."""
 
 import json
+import math
 import sys
 
 from ..control import DEFAULT_CONTROL_PORT
@@ -28,8 +29,17 @@ def register(subparsers):
     parser.set_defaults(handler=run_send)
 
 
+def check_client_args(args):
+    """Refuse a port or timeout the client cannot use (one line, exit status 2)."""
+    if not 0 < args.port < 65536:
+        raise RtstageError(f"--port must be 1..65535, got {args.port}")
+    if not (math.isfinite(args.timeout_s) and args.timeout_s > 0):
+        raise RtstageError(f"--timeout-s must be a positive number of seconds, got {args.timeout_s:g}")
+
+
 def run_send(args):
     """Handler of ``rtstage send``; returns the exit status."""
+    check_client_args(args)
     token = read_token_file(args.token_file) if args.token_file else None
     if args.request and not args.interactive:
         obj = parse_words(args.request)

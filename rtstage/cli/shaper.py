@@ -13,10 +13,12 @@ Figures and curves go to stdout (data); log lines go to stderr.
 
 import json
 import math
+import os
 import sys
 
 from .. import design as D
 from ..errors import RtstageError
+from ..files.exits import UsageError, add_overwrite_options
 from ..shapers import all_shapers, get_shaper
 
 
@@ -55,6 +57,7 @@ def register(subparsers):
     p.add_argument("--id", dest="shaper_id", help="id of the designed shaper (default e.g. thr9-48k)")
     p.add_argument("--save", metavar="FILE", help="write the design as a shaper preset (.toml)")
     p.add_argument("--json", action="store_true", help="print the design as JSON")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_design)
 
     p = sub.add_parser("plot", help="the NTF curve of a shaper")
@@ -63,12 +66,12 @@ def register(subparsers):
     p.add_argument("--points", type=int, default=512, help="frequency intervals from 0 to fs/2 (default 512)")
     p.add_argument("--json", action="store_true", help="JSON instead of 'Hz dB' text rows")
     p.add_argument("--png", metavar="FILE", help="draw the curve into an image (needs matplotlib)")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_plot)
 
 
 def _usage(parser):
-    parser.print_help(sys.stderr)
-    return 2
+    raise UsageError("shaper: give an action: list, design or plot ('rtstage shaper --help' describes them)")
 
 
 def _log(message):
@@ -114,6 +117,13 @@ def run_list(args):
 
 def run_design(args):
     """Design a shaper; print its figures and optionally save it."""
+    plan = None
+    if args.save:
+        from ..files.policy import OutputPlan
+
+        plan = OutputPlan(f"saving the shaper design {args.save}", inputs=[args.table], overwrite=args.overwrite)
+        plan.add_file(args.save, "--save")
+        plan.check()
     weighting = args.weighting
     table = None
     if args.table:
@@ -135,7 +145,8 @@ def run_design(args):
     if design.range_db < design.requested_range_db:
         _log(f"caps met by narrowing the weighting range from {design.requested_range_db:g} to {design.range_db:.2f} dB")
     if args.save:
-        D.save_design(design, args.save)
+        with plan:
+            D.save_design(design, args.save, plan=plan)
         _log(f"saved shaper '{design.shaper.id}' to {args.save}")
     out = {
         "id": design.shaper.id,
@@ -169,12 +180,21 @@ def run_plot(args):
     _check_rate(args.samplerate)
     if not 8 <= args.points <= 1 << 16:
         raise RtstageError(f"--points must be between 8 and 65536, got {args.points}")
+    plan = None
+    if args.png:
+        from ..files.policy import OutputPlan
+
+        plan = OutputPlan(f"drawing {args.png}", inputs=[args.shaper] if os.path.exists(args.shaper) else [],
+                          overwrite=args.overwrite)
+        plan.add_file(args.png, "--png")
+        plan.check()
     shaper = get_shaper(args.shaper)
     freqs, gain = D.ntf_curve(shaper, args.samplerate, args.points)
     rate = float(freqs[-1] * 2.0)
     gain = [max(float(g), -300.0) for g in gain]
     if args.png:
-        _draw_png(shaper, freqs, gain, rate, args.png)
+        with plan:
+            _draw_png(shaper, freqs, gain, rate, args.png, plan)
         _log(f"wrote {args.png}")
         return 0
     if args.json:
@@ -186,8 +206,8 @@ def run_plot(args):
     return 0
 
 
-def _draw_png(shaper, freqs, gain, rate, path):
+def _draw_png(shaper, freqs, gain, rate, path, plan):
     """The NTF figure, in the style of the report's ``shaper-ntf.png`` (:func:`rtstage.meters.plots.write_ntf_png`)."""
     from ..meters.plots import write_ntf_png
 
-    write_ntf_png(shaper.id, shaper.coefs, rate, path, design_samplerate_hz=shaper.design_samplerate_hz)
+    write_ntf_png(shaper.id, shaper.coefs, rate, path, design_samplerate_hz=shaper.design_samplerate_hz, plan=plan)

@@ -7,6 +7,7 @@ as ``rtstage run`` (:class:`rtstage.live.display.LiveDisplay`) on stderr.  With
 """
 
 import json
+import math
 import signal
 import sys
 import threading
@@ -62,6 +63,13 @@ def run_watch(args):
     from ..control.server import read_token_file
     from ..live.display import LiveDisplay
 
+    from .send import check_client_args
+
+    check_client_args(args)
+    if not (math.isfinite(args.rate_hz) and args.rate_hz > 0):
+        raise RtstageError(f"--rate-hz must be a positive number, got {args.rate_hz:g}")
+    if args.duration is not None and not (math.isfinite(args.duration) and args.duration > 0):
+        raise RtstageError(f"--duration must be a positive number of seconds, got {args.duration:g}")
     token = read_token_file(args.token_file) if args.token_file else None
     latest = _Latest()
     stop = threading.Event()

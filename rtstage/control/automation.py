@@ -168,3 +168,62 @@ class AutomationWriter:
 
     def __exit__(self, *exc):
         self.close()
+
+
+def review_automation(events, settings, total_frames, path, warn):
+    """Check timed changes against the whole render before it starts, and count those that do nothing.
+
+    Every change is validated with the settings in force when it applies, so
+    a combination the engine refuses (a shaper left without dither, say) is
+    refused before any audio work, naming the file and the frame.  A change
+    that the settings accept only because ``settings.accept_unsafe`` is set
+    is warned about, naming the file and the frame.  Changes at or past the
+    input's end and changes that repeat the value already in force are
+    counted and reported in one warning line.
+
+    Parameters
+    ----------
+    events : list of (int, dict)
+        From :func:`load_automation`.
+    settings : EngineSettings
+        The render's settings at frame 0 (resolved).
+    total_frames : int
+        Frames in the input.
+    path : str
+        The automation file, for the messages.
+    warn : callable
+        Called with each warning line.
+
+    Returns
+    -------
+    dict
+        ``{"past_end": n, "repeated": n}``.
+    """
+    from ..settings import unsafe_warning
+
+    current = settings
+    past_end = repeated = 0
+    for frame, values in events:
+        if frame >= total_frames:
+            past_end += 1
+            continue
+        now = params.values_from_settings(current)
+        if all(now.get(k) == v for k, v in values.items()):
+            repeated += 1
+        nxt = params.settings_with(current, values)
+        try:
+            nxt = nxt.resolved()
+        except RtstageError as exc:
+            raise RtstageError(f"automation file {path}, change at frame {frame}: {exc}") from None
+        message = unsafe_warning(nxt, f"automation file {path} at frame {frame}")
+        if message and nxt.unsafe_risks() != current.unsafe_risks():
+            warn(message)
+        current = nxt
+    if past_end or repeated:
+        parts = []
+        if past_end:
+            parts.append(f"{past_end} change(s) at or past the end of the input ({total_frames} frames) not applied")
+        if repeated:
+            parts.append(f"{repeated} change(s) repeating the value already in force")
+        warn(f"warning: automation file {path}: {'; '.join(parts)}")
+    return {"past_end": past_end, "repeated": repeated}

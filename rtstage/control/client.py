@@ -10,7 +10,7 @@ Examples
 import json
 import socket
 
-from ..errors import RtstageError
+from ..errors import RtstageError, RuntimeFailure
 from . import DEFAULT_CONTROL_PORT
 
 
@@ -99,7 +99,7 @@ class ControlClient:
         try:
             self._sock = socket.create_connection((self.host, self.port), timeout=self.timeout_s)
         except OSError as exc:
-            raise RtstageError(f"cannot connect to {self.host}:{self.port}: {exc.strerror or exc}") from None
+            raise RuntimeFailure(f"cannot connect to {self.host}:{self.port}: {exc.strerror or exc}") from None
         self._file = self._sock.makefile("rwb")
         self.greeting = self.read_line()
         if self.greeting.get("event") == "closing":

@@ -420,6 +420,8 @@ def load_map(name_or_path):
         raise RtstageError(f"cannot read MIDI map {path}: {exc.strerror}") from None
     except tomllib.TOMLDecodeError as exc:
         raise RtstageError(f"MIDI map {path}: not valid TOML ({exc})") from None
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"MIDI map {path}: not UTF-8 text (byte {exc.start})") from None
     return map_from_dict(data, where=f"MIDI map {path}")
 
 

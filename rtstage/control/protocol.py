@@ -172,6 +172,8 @@ class PresetStore:
             raise RequestError(f"cannot read preset {name!r}: {exc.strerror}") from None
         except tomllib.TOMLDecodeError as exc:
             raise RequestError(f"preset {name!r} is not valid TOML ({exc})") from None
+        except UnicodeDecodeError as exc:
+            raise RequestError(f"preset {name!r} is not UTF-8 text (byte {exc.start})") from None
         values = data.get("values")
         if not isinstance(values, dict) or not values:
             raise RequestError(f"preset {name!r} has no [values] table")

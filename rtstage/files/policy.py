@@ -50,7 +50,7 @@ import stat
 import tempfile
 import threading
 
-from ..errors import RtstageError
+from ..errors import RtstageError, RuntimeFailure
 
 __all__ = [
     "OutputPlan",
@@ -58,6 +58,8 @@ __all__ = [
     "WriteFailed",
     "Interrupted",
     "install_signal_handlers",
+    "deferred_signals",
+    "check_interrupted",
     "remove_live_temps",
     "set_activity",
     "file_mode",
@@ -75,7 +77,7 @@ class OutputRefused(RtstageError):
     exit_status = 2
 
 
-class WriteFailed(RtstageError):
+class WriteFailed(RuntimeFailure):
     """Writing an output failed (full disk, file-size limit, I/O error); nothing was left behind (exit status 1)."""
 
     exit_status = 1
@@ -134,9 +136,57 @@ def remove_live_temps():
     return removed
 
 
+_signalled = []
+_defer_depth = [0]
+_raised = []
+
+GIVE_UP_S = 5.0
+"""How long a deferred interruption may wait for a safe point before the process leaves anyway."""
+
+
+def _give_up(signum):
+    if _raised:
+        return
+    try:
+        import sys
+
+        print(f"rtstage: {Interrupted(signum).message()}", file=sys.stderr, flush=True)
+    finally:
+        os._exit(128 + int(signum))
+
+
 def _on_signal(signum, frame):
     remove_live_temps()
-    raise Interrupted(signum)
+    if _signalled:
+        # A second signal while the first is being handled: leave at once, nothing half-written remains.
+        os._exit(128 + int(signum))
+    _signalled.append(signum)
+    if _defer_depth[0] == 0:
+        _raised.append(signum)
+        raise Interrupted(signum)
+    timer = threading.Timer(GIVE_UP_S, _give_up, args=(signum,))
+    timer.daemon = True
+    timer.start()
+
+
+def check_interrupted():
+    """Raise :class:`Interrupted` if a signal arrived while signals were deferred (call at safe points)."""
+    if _signalled and not _raised:
+        _raised.append(_signalled[0])
+        raise Interrupted(_signalled[0])
+
+
+@contextlib.contextmanager
+def deferred_signals():
+    """Inside, a signal does not raise at once (it could land inside a lock of a queue shared with
+    worker threads); it removes the temporary files, and :func:`check_interrupted`, called at safe
+    points, raises it.  If no safe point comes within :data:`GIVE_UP_S`, the process says so and leaves."""
+    _defer_depth[0] += 1
+    try:
+        yield
+    finally:
+        _defer_depth[0] -= 1
+    check_interrupted()
 
 
 def install_signal_handlers():
@@ -229,7 +279,7 @@ class _Output:
         self.size_bytes = size_bytes
         self.folder = folder
         self.tmp = None
-        self.created_folder = False
+        self.created = []
         self.files = []
 
     @property
@@ -294,6 +344,10 @@ class OutputPlan:
             else:
                 yield out
 
+    def _committed_folders(self):
+        for out in self.outputs:
+            out.created = []
+
     def check(self):
         """Apply every rule to every output; raise :class:`OutputRefused` (or WriteFailed) before anything is written.
 
@@ -347,18 +401,14 @@ class OutputPlan:
                     raise OutputRefused(f"{out.what} {path} exists and is not a regular file")
             if not self.overwrite:
                 raise OutputRefused(f"{out.what} {path} exists (use --overwrite to replace it)")
-        parent = getattr(out, "parent_folder", None)
-        if parent is not None and not os.path.isdir(parent.path):
-            return  # the folder is created when written; its parent was checked
         folder = os.path.dirname(os.path.abspath(path))
+        if getattr(out, "parent_folder", None) is not None:
+            return  # missing folders inside a declared output folder are created when written
         if not os.path.isdir(folder):
             raise OutputRefused(f"{out.what} {path}: the folder {folder} does not exist")
 
     def _reserve(self, out):
-        parent = getattr(out, "parent_folder", None)
-        folder = os.path.dirname(os.path.abspath(out.path))
-        if parent is not None and not os.path.isdir(parent.path):
-            folder = os.path.dirname(os.path.abspath(parent.path))
+        folder = _existing_ancestor(os.path.dirname(os.path.abspath(out.path)))
         try:
             fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".part", dir=folder)
         except OSError as exc:
@@ -398,12 +448,12 @@ class OutputPlan:
                 _forget(out.tmp)
                 out.tmp = None
         for out in self.outputs:
-            if out.folder and out.created_folder:
+            for created in reversed(out.created):
                 try:
-                    os.rmdir(out.path)
+                    os.rmdir(created)
                 except OSError:
                     pass
-                out.created_folder = False
+            out.created = []
 
     # -- writing --------------------------------------------------------------
 
@@ -417,20 +467,27 @@ class OutputPlan:
 
     def file_in(self, folder, name):
         """The declared output ``name`` inside output folder ``folder``."""
+        wanted = os.path.join(folder.path, name)
         for out in folder.files:
-            if os.path.basename(out.path) == name:
+            if out.path == wanted:
                 return out
         raise KeyError(f"{name} was not declared in {folder.path}")
 
     def _prepare_tmp(self, out):
         parent = getattr(out, "parent_folder", None)
-        if parent is not None and not os.path.isdir(parent.path):
-            try:
-                os.mkdir(parent.path)
-            except OSError as exc:
-                raise io_error(parent.path, exc, "create the folder") from None
-            parent.created_folder = True
         folder = os.path.dirname(os.path.abspath(out.path))
+        if parent is not None and not os.path.isdir(folder):
+            missing = []
+            probe = folder
+            while not os.path.isdir(probe):
+                missing.append(probe)
+                probe = os.path.dirname(probe)
+            for new in reversed(missing):
+                try:
+                    os.mkdir(new)
+                except OSError as exc:
+                    raise io_error(new, exc, "create the folder") from None
+                parent.created.append(new)
         if out.tmp is not None and os.path.dirname(out.tmp) != folder:
             os.unlink(out.tmp)
             _forget(out.tmp)
@@ -500,15 +557,13 @@ class OutputPlan:
                     out.tmp = None
                     out.ready = False
                     folders.add(os.path.dirname(os.path.abspath(out.path)))
-                    parent = getattr(out, "parent_folder", None)
-                    if parent is not None:
-                        parent.created_folder = False  # it holds a finished file now
         except OSError as exc:
             self.discard()
             raise io_error(out.path, exc, "rename into") from None
         for folder in folders:
             _fsync_folder(folder)
         self.finish()
+        self._committed_folders()
 
     def finish(self):
         """Remove the temporary files of outputs that were declared but not written."""
@@ -532,6 +587,15 @@ class OutputPlan:
         else:
             self.discard()
         return False
+
+
+def _existing_ancestor(folder):
+    while folder and not os.path.isdir(folder):
+        parent = os.path.dirname(folder)
+        if parent == folder:
+            break
+        folder = parent
+    return folder
 
 
 def _fsync_folder(folder):

@@ -50,7 +50,7 @@ def write_sequence(path, seed, bits, samplerate, channels, frames, force=False, 
     if ext not in FORMATS:
         raise RtstageError(f"cannot tell the output format from '{path}' (use one of: {', '.join(FORMATS)})")
     if os.path.exists(path) and not force:
-        raise RtstageError(f"{path} exists; use --force to replace it")
+        raise RtstageError(f"{path} exists; use --overwrite to replace it")
     directory = os.path.dirname(os.path.abspath(path))
     fd, tmp = tempfile.mkstemp(prefix=".linktest-", suffix=ext, dir=directory)
     os.close(fd)

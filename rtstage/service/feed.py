@@ -138,7 +138,9 @@ SCHEMA = {
     },
     "engine": {
         "preset": (_str, "preset", "engine preset id or path; the keys below override it"),
-        "force": (_bool, "force", "accept settings theory marks unsafe"),
+        "accept_unsafe_shaping": (_bool, "accept_unsafe_shaping",
+                                  "accept settings theory marks unsafe (warned on every use; Lipshitz, Wannamaker & "
+                                  "Vanderkooy, JAES 2004)"),
         **{name: (_str if name == "shaper" else _param(name),  # a shaper family resolves by rate, as on the command line
                   name if name in ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale") else None,
                   params.PARAMS[name].description) for name in params.ENGINE_FIELDS},
@@ -220,7 +222,7 @@ class Feed:
         return out
 
     def engine_values(self):
-        """The ``[engine]`` parameter values the file sets (preset and force aside)."""
+        """The ``[engine]`` parameter values the file sets (preset and accept_unsafe_shaping aside)."""
         return {k: v for k, v in self.values.get("engine", {}).items() if k in params.PARAMS}
 
     def flat(self):
@@ -280,7 +282,7 @@ def _check_combinations(feed):
         try:
             settings = settings_from(eng.get("preset"), **{k: eng.get(k) for k in
                                                           ("bits", "dither", "shaper", "seed", "gain_db", "dither_scale")},
-                                     force=eng.get("force") or None)
+                                     accept_unsafe=eng.get("accept_unsafe_shaping") or None)
             params.settings_with(settings, {k: eng[k] for k in ENGINE_ONLY_KEYS if k in eng}).validate()
         except RtstageError as exc:
             text = str(exc)
