@@ -365,7 +365,7 @@ def check_port(engine, seen):
     engine.gaps.append(gap)
     if engine.tap is not None:
         engine.tap.gaps.append(gap)
-    from ..engine import log
+    from ..log import log
 
     log(f"{gap['reason']} at sample {gap['engine_frame']}")
     return events
