@@ -77,9 +77,12 @@ MODE_FILE = 1
 DEV_CAPACITY = 1 << 18
 """Send deviations kept (the last 262144 packets: 4.4 min at 1 ms)."""
 DEFAULT_RT_PRIORITY = 70
-PRODUCER_LEAD_S = 0.002
-"""How far ahead of its send time a packet is computed (rounded up to whole packets, at least one):
-a producer woken late by less than this never delays a send."""
+PRODUCER_LEAD_S = 0.0025
+"""How far ahead of its send time a packet is computed (about; see ``prepare``): a producer woken late by
+less than this never delays a send."""
+PRODUCER_OFFSET = True
+"""Keep the producer's deadlines half a packet off the sender's (two realtime threads waking together on a
+2-core machine would queue one behind the other)."""
 _WAIT_NS = 20_000
 """Sleep between looks at an empty ring (the sender waiting for words)."""
 
@@ -354,9 +357,10 @@ class NetEngine:
         ring_rows = max(rate, 64 * self.fpp)
         self.net_ring = np.zeros((ring_rows if self.out is not None else 0, nch), dtype=dtype)
         self.tap_ring = np.zeros((2 * ring_rows if self.tap_path else 0, nch), dtype=dtype)
-        # The producer runs PRODUCER_LEAD_S (at least one packet) ahead of the sender, in whole packets.
+        # The producer runs about PRODUCER_LEAD_S ahead of the sender, half a packet off the send grid, so the
+        # two clocked threads never wake at the same instant.
         lead_packets = max(1, -(-int(round(PRODUCER_LEAD_S * rate)) // self.fpp))
-        self.lead_frames = lead_packets * self.fpp
+        self.lead_frames = lead_packets * self.fpp - (self.fpp // 2 if PRODUCER_OFFSET else 0)
         self.xbuf = np.zeros((self.fpp, nch), dtype=np.float64)
         self.ybuf = np.zeros((self.fpp, nch), dtype=dtype)
         self.vq = np.zeros((0, nch), dtype=np.float64)
