@@ -474,8 +474,6 @@ class NetEngine:
         src = self.source
 
         def on_block(x, gap):
-            if gap is not None and self._tap is not None:
-                self._tap.gaps.append({"tap_frame": int(self.ctl[C_TAP_HEAD]), **gap})
             n = x.shape[0]
             S.take_params(*self.block.seqlock(), *self.engine.state.arrays()[:2], self.engine.frame)
             if self._in_y.shape[0] < n:
@@ -543,6 +541,8 @@ class NetEngine:
         self.state = "stopped"
         status = self.status()
         if self._tap is not None:
+            if self.receiver is not None:  # the tap starts at sample 0 with the stream: tap frame = engine frame
+                self._tap.gaps = [{"tap_frame": g["engine_frame"], **g} for g in self.receiver.gaps]
             status["tap"] = self._tap.close()
             self._tap = None
         if self._sock is not None:
