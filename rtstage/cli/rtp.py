@@ -120,7 +120,7 @@ def run_deviceless(args, settings, control_wiring):
 
     if args.source is None:
         raise RtstageError("--device none needs --source (a file, a generator, rtp:HOST:PORT or sdp:FILE)")
-    unsupported = [opt for opt, dest in (("--metrics", "metrics"), ("--osc", "osc"), ("--tap-rotate-s", "tap_rotate_s"),
+    unsupported = [opt for opt, dest in (("--metrics", "metrics"), ("--tap-rotate-s", "tap_rotate_s"),
                                          ("--tap-rotate-mb", "tap_rotate_mb"))
                    if getattr(args, dest, None) not in (None, False)]
     if unsupported:

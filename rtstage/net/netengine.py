@@ -44,6 +44,7 @@ from ..engine import Engine
 from ..log import log
 from ..errors import RtstageError
 from ..live import shared as S
+from ..live import timing as T
 from ..live.sources import fill_generated
 from . import _native as N
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
@@ -98,7 +99,10 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
         late = N.now_ns(clock_id, ts) - deadline
         if late > ctl[C_WAKE_LATE_MAX]:
             ctl[C_WAKE_LATE_MAX] = late
-        # New settings (control socket) at the block boundary, through the live engine's seqlock.
+        # New settings (control socket) at the block boundary, through the live engine's seqlock; the block's
+        # start and end on CLOCK_MONOTONIC as the live callback stamps them (rtstage.live.handoff reads them).
+        pctl[T.C_CB_START_FRAME] = kclock[K.CLK_FRAME]
+        pctl[T.C_CB_START_NS] = N.now_ns(N.CLOCK_MONOTONIC, ts)
         S.take_params(pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fparams, kclock[K.CLK_FRAME])
         n = fpp
         if mode == MODE_FILE:
@@ -126,6 +130,7 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
             N.ring_write(ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, tap_ring, ybuf, n)
             ctl[C_FRAMES] += n
             ctl[C_PRODUCED_PACKETS] += 1
+        pctl[T.C_CB_DONE_NS] = N.now_ns(N.CLOCK_MONOTONIC, ts)
         if n < fpp:
             break
         k += 1
@@ -351,6 +356,8 @@ class NetEngine:
         else:
             self.out = None
             self.fpp = max(1, int(round(self.block_ms * rate / 1000.0)))
+        self.blocksize = self.fpp
+        """Frames per block of the clocked thread (the control layer's block period)."""
         nch = self.channels
         dtype = self.engine.dtype
         self.ctl = np.zeros(C_LEN, dtype=np.int64)
@@ -475,6 +482,9 @@ class NetEngine:
 
         def on_block(x, gap):
             n = x.shape[0]
+            pctl = self.block.ctl
+            pctl[T.C_CB_START_FRAME] = self.engine.frame
+            pctl[T.C_CB_START_NS] = time.monotonic_ns()
             S.take_params(*self.block.seqlock(), *self.engine.state.arrays()[:2], self.engine.frame)
             if self._in_y.shape[0] < n:
                 self._in_y = np.zeros((n, self.channels), dtype=self.engine.dtype)
@@ -483,6 +493,7 @@ class NetEngine:
             N.ring_write(self.ctl, C_NET_HEAD, C_NET_TAIL, C_NET_DROPPED, self.net_ring, y, n)
             N.ring_write(self.ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, self.tap_ring, y, n)
             self.ctl[C_FRAMES] += n
+            pctl[T.C_CB_DONE_NS] = time.monotonic_ns()
 
         self._in_y = np.zeros((4096, self.channels), dtype=self.engine.dtype)
         self.receiver = RtpReceiver(src.host, src.port, src.encoding, src.samplerate, src.channels, on_block,
