@@ -99,3 +99,38 @@ def test_interarrival_jitter_rfc3550():
     assert est.jitter == 8 / 16
     est.update(0.040, 320)  # back on time: |D| = 8
     assert est.jitter == 0.5 + (8 - 0.5) / 16
+
+
+def test_a_restarted_sender_is_followed(tmp_path):
+    # RFC 3550 §8.2: a restarted sender draws a new SSRC (and new random sequence and timestamp starts).
+    samplerate, channels, fpp = 48000, 1, 48
+    x = generate("noise:level_dbfs=-10,seed=8", samplerate, channels, 0, fpp * 20)
+    words24 = np.clip(np.round(x * 2**23), -2**23, 2**23 - 1).astype(np.int64)
+    settings = EngineSettings(bits=24, dither="none", seed=1)  # 24-bit words pass unchanged
+    tap = tmp_path / "tap.wav"
+    engine = NetEngine(settings, RtpSource(LOOPBACK, 0, "L24", samplerate, channels, depth_ms=2.0, idle_s=1.5),
+                       tap=str(tap))
+    engine.start()
+    port = engine.receiver.port
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    try:
+        for k in range(10):
+            tx.sendto(l24_packet(100 + k, 5000 + k * fpp, 0xAAAA0001, words24[k * fpp:(k + 1) * fpp]), (LOOPBACK, port))
+            time.sleep(0.001)
+        time.sleep(0.7)  # the first source falls silent (longer than rtstage.net.receiver.SSRC_SWITCH_S)
+        for k in range(10, 20):
+            tx.sendto(l24_packet(40000 + k, 9 + k * fpp, 0xBBBB0002, words24[k * fpp:(k + 1) * fpp]), (LOOPBACK, port))
+            time.sleep(0.001)
+    finally:
+        tx.close()
+    deadline = time.monotonic() + 10
+    while not engine.finished and time.monotonic() < deadline:
+        time.sleep(0.02)
+    status = engine.stop()
+    stream = status["streams"]["rtp_in"]
+    assert stream["source_changes"] == 1 and stream["lost"] == 0 and stream["ssrc"] == 0xBBBB0002
+    assert [g["engine_frame"] for g in status["gaps"]] == [10 * fpp]
+    got, _ = sf.read(str(tap), dtype="int32", always_2d=True)
+    assert_array_equal(got.astype(np.int64) >> 8, words24)
+    sidecar = json.loads((tmp_path / "tap.wav.gaps.json").read_text())
+    assert [(g["tap_frame"], g["frames"]) for g in sidecar["gaps"]] == [(10 * fpp, 0)]

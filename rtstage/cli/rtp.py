@@ -120,6 +120,18 @@ def run_deviceless(args, settings, control_wiring):
 
     if args.source is None:
         raise RtstageError("--device none needs --source (a file, a generator, rtp:HOST:PORT or sdp:FILE)")
+    unsupported = [opt for opt, dest in (("--metrics", "metrics"), ("--tap-rotate-s", "tap_rotate_s"),
+                                         ("--tap-rotate-mb", "tap_rotate_mb"))
+                   if getattr(args, dest, None) not in (None, False)]
+    if unsupported:
+        raise RtstageError(f"{', '.join(unsupported)} not available with --device none yet")
+    if getattr(args, "feed", None):
+        log("note: with --device none the feed file is read once; SIGHUP does not reload it")
+    if getattr(args, "lock_memory", False):
+        from ..service.runner import lock_memory
+
+        reason = lock_memory()
+        log(f"warning: memory not locked: {reason}" if reason else "memory locked (mlockall)")
     opts = rtp_out_options(args)
     if opts is None and not args.tap:
         raise RtstageError("--device none needs an output: --rtp-out and/or --tap")

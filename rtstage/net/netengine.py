@@ -44,6 +44,7 @@ from ..engine import Engine
 from ..log import log
 from ..errors import RtstageError
 from ..live import shared as S
+from ..live import timing as T
 from ..live.sources import fill_generated
 from . import _native as N
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
@@ -77,9 +78,12 @@ MODE_FILE = 1
 DEV_CAPACITY = 1 << 18
 """Send deviations kept (the last 262144 packets: 4.4 min at 1 ms)."""
 DEFAULT_RT_PRIORITY = 70
-PRODUCER_LEAD_S = 0.002
-"""How far ahead of its send time a packet is computed (rounded up to whole packets, at least one):
-a producer woken late by less than this never delays a send."""
+PRODUCER_LEAD_S = 0.0025
+"""How far ahead of its send time a packet is computed (about; see ``prepare``): a producer woken late by
+less than this never delays a send."""
+PRODUCER_OFFSET = True
+"""Keep the producer's deadlines half a packet off the sender's (two realtime threads waking together on a
+2-core machine would queue one behind the other)."""
 _WAIT_NS = 20_000
 """Sleep between looks at an empty ring (the sender waiting for words)."""
 
@@ -95,7 +99,10 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
         late = N.now_ns(clock_id, ts) - deadline
         if late > ctl[C_WAKE_LATE_MAX]:
             ctl[C_WAKE_LATE_MAX] = late
-        # New settings (control socket) at the block boundary, through the live engine's seqlock.
+        # New settings (control socket) at the block boundary, through the live engine's seqlock; the block's
+        # start and end on CLOCK_MONOTONIC as the live callback stamps them (rtstage.live.handoff reads them).
+        pctl[T.C_CB_START_FRAME] = kclock[K.CLK_FRAME]
+        pctl[T.C_CB_START_NS] = N.now_ns(N.CLOCK_MONOTONIC, ts)
         S.take_params(pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fparams, kclock[K.CLK_FRAME])
         n = fpp
         if mode == MODE_FILE:
@@ -123,6 +130,7 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
             N.ring_write(ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, tap_ring, ybuf, n)
             ctl[C_FRAMES] += n
             ctl[C_PRODUCED_PACKETS] += 1
+        pctl[T.C_CB_DONE_NS] = N.now_ns(N.CLOCK_MONOTONIC, ts)
         if n < fpp:
             break
         k += 1
@@ -348,15 +356,18 @@ class NetEngine:
         else:
             self.out = None
             self.fpp = max(1, int(round(self.block_ms * rate / 1000.0)))
+        self.blocksize = self.fpp
+        """Frames per block of the clocked thread (the control layer's block period)."""
         nch = self.channels
         dtype = self.engine.dtype
         self.ctl = np.zeros(C_LEN, dtype=np.int64)
         ring_rows = max(rate, 64 * self.fpp)
         self.net_ring = np.zeros((ring_rows if self.out is not None else 0, nch), dtype=dtype)
         self.tap_ring = np.zeros((2 * ring_rows if self.tap_path else 0, nch), dtype=dtype)
-        # The producer runs PRODUCER_LEAD_S (at least one packet) ahead of the sender, in whole packets.
+        # The producer runs about PRODUCER_LEAD_S ahead of the sender, half a packet off the send grid, so the
+        # two clocked threads never wake at the same instant.
         lead_packets = max(1, -(-int(round(PRODUCER_LEAD_S * rate)) // self.fpp))
-        self.lead_frames = lead_packets * self.fpp
+        self.lead_frames = lead_packets * self.fpp - (self.fpp // 2 if PRODUCER_OFFSET else 0)
         self.xbuf = np.zeros((self.fpp, nch), dtype=np.float64)
         self.ybuf = np.zeros((self.fpp, nch), dtype=dtype)
         self.vq = np.zeros((0, nch), dtype=np.float64)
@@ -470,9 +481,10 @@ class NetEngine:
         src = self.source
 
         def on_block(x, gap):
-            if gap is not None and self._tap is not None:
-                self._tap.gaps.append({"tap_frame": int(self.ctl[C_TAP_HEAD]), **gap})
             n = x.shape[0]
+            pctl = self.block.ctl
+            pctl[T.C_CB_START_FRAME] = self.engine.frame
+            pctl[T.C_CB_START_NS] = time.monotonic_ns()
             S.take_params(*self.block.seqlock(), *self.engine.state.arrays()[:2], self.engine.frame)
             if self._in_y.shape[0] < n:
                 self._in_y = np.zeros((n, self.channels), dtype=self.engine.dtype)
@@ -481,6 +493,7 @@ class NetEngine:
             N.ring_write(self.ctl, C_NET_HEAD, C_NET_TAIL, C_NET_DROPPED, self.net_ring, y, n)
             N.ring_write(self.ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, self.tap_ring, y, n)
             self.ctl[C_FRAMES] += n
+            pctl[T.C_CB_DONE_NS] = time.monotonic_ns()
 
         self._in_y = np.zeros((4096, self.channels), dtype=self.engine.dtype)
         self.receiver = RtpReceiver(src.host, src.port, src.encoding, src.samplerate, src.channels, on_block,
@@ -539,6 +552,8 @@ class NetEngine:
         self.state = "stopped"
         status = self.status()
         if self._tap is not None:
+            if self.receiver is not None:  # the tap starts at sample 0 with the stream: tap frame = engine frame
+                self._tap.gaps = [{"tap_frame": g["engine_frame"], **g} for g in self.receiver.gaps]
             status["tap"] = self._tap.close()
             self._tap = None
         if self._sock is not None:

@@ -49,6 +49,9 @@ DEFAULT_DEPTH_MS = 5.0
 """Default jitter-buffer depth (common practice for a LAN: a few packet times)."""
 MAX_GAP_PACKETS = 3000
 """A jump larger than this (in packets) is a restart of the sender, not a loss: the buffer resynchronises."""
+SSRC_SWITCH_S = 0.5
+"""A packet from another SSRC takes over the input once the current source has been silent this long
+(a sender that restarted draws a new SSRC, RFC 3550 §8.2); until then it is counted and ignored."""
 _WINDOW = 4096
 """How many played sequence numbers are remembered to tell a duplicate from a late packet."""
 
@@ -152,6 +155,16 @@ class JitterBuffer:
             out.append(self._release())
         return out
 
+    def restart(self):
+        """Release everything held, then forget the sequence numbering (a new source starts its own)."""
+        out = self.flush()
+        self.next_ext = None
+        self.highest = None
+        self.pending = {}
+        self._played = set()
+        self._played_order = []
+        return out
+
     def flush(self):
         """Release everything held, in order, gaps between held packets counted lost."""
         out = []
@@ -232,6 +245,8 @@ class RtpReceiver:
         self.frames_out = 0
         self.gaps = []
         self.other = {"bad_version": 0, "wrong_payload_type": 0, "foreign_ssrc": 0, "malformed": 0}
+        self.source_changes = 0
+        self._last_arrival = None
         self.done = threading.Event()
         self.started = threading.Event()
         self._stop = threading.Event()
@@ -310,8 +325,11 @@ class RtpReceiver:
         if self.ssrc is None:
             self.ssrc = ssrc
         elif ssrc != self.ssrc:
-            self.other["foreign_ssrc"] += 1
-            return
+            if self._last_arrival is None or arrival_s - self._last_arrival < SSRC_SWITCH_S:
+                self.other["foreign_ssrc"] += 1
+                return
+            self._switch_source(ssrc)
+        self._last_arrival = arrival_s
         end = len(data)
         if padding:
             end -= data[-1]
@@ -331,6 +349,17 @@ class RtpReceiver:
         if self.buffer.counts["duplicated"] == before:
             self.jitter.update(arrival_s, timestamp)
         self._deliver(released)
+
+    def _switch_source(self, ssrc):
+        """The old source fell silent and another one speaks: play out what is held, then follow the new one."""
+        if self.buffer is not None:
+            self._deliver(self.buffer.restart())
+        self.gaps.append({"engine_frame": int(self.frames_out), "frames": 0, "seq": None,
+                          "reason": f"source changed: SSRC {self.ssrc:#010x} -> {ssrc:#010x}"})
+        log(f"RTP input: SSRC {self.ssrc:#010x} fell silent, following {ssrc:#010x} from sample {self.frames_out}")
+        self.ssrc = ssrc
+        self.source_changes += 1
+        self.jitter = JitterEstimator(self.samplerate)
 
     def _deliver(self, released):
         for ext, item in released:
@@ -373,6 +402,7 @@ class RtpReceiver:
             "reordered": counts["reordered"],
             "duplicated": counts["duplicated"],
             "resyncs": counts["resyncs"],
+            "source_changes": self.source_changes,
             "jitter_ts": round(self.jitter.jitter, 3),
             "jitter_ms": round(self.jitter.jitter_ms, 6),
             "frames_out": int(self.frames_out),
