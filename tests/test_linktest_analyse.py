@@ -40,7 +40,7 @@ def _analyse(capture_lsb, **kwargs):
 
 
 NEUTRAL = {"polarity": 1, "gain_db": 0.0, "dc_offset_lsb": 0.0, "slips": [], "drift_ppm": 0.0, "clipped": 0,
-           "requantization": "none", "bits_passed": BITS, "frames_missing": 0}
+           "requantization": "none", "bits_passed": BITS, "frames_missing": 0, "damaged": []}
 
 
 def check(report, named, latency=0, sources=(0, 1), transparent=False):
@@ -300,3 +300,29 @@ def test_a_dead_channel(words):
     assert dead["source_channel"] is None and dead["transparent"] is False and dead["bits_passed"] == 0
     assert "channel 2: no link test marker" in "\n".join(report["summary"])
     assert "sequence channel 2 did not arrive" in report["summary"]
+
+
+def test_damaged_stretches_in_a_dithered_path(tmp_path, frames):
+    # What a glitching link does, made with numpy on an `rtstage render` 16-bit TPDF capture: 256 frames
+    # replaced by zeros (a concealed lost packet) and 64 frames repeated from just before (a stale buffer).
+    src, out = str(tmp_path / "seq.wav"), str(tmp_path / "air.wav")
+    assert main(["linktest", "generate", src, "--seed", str(SEED), "--seconds", "3"]) == 0
+    assert main(["render", src, out, "--bits", "16", "--seed", "8"]) == 0
+    data, rate = sf.read(out, dtype="float64", always_2d=True)
+    secs = {s.name: s for s in seq.sections(SR, frames)}
+    zero_at = secs["full"].start + 10000
+    stale_at = secs["full"].start + 50000
+    data[zero_at : zero_at + 256] = 0.0
+    data[stale_at : stale_at + 64] = data[stale_at - 64 : stale_at]
+    report = analyse(data, rate, SEED, bits=BITS)
+    # A stale word can by chance lie within 2^-9 of full scale of the right one (about 0.2 % of the
+    # uniform full-range words, from their distribution); such a word at either end of a stretch is not
+    # told apart, so each stretch lies inside its block and misses at most two words of it.
+    for ch in report["channels"]:
+        assert len(ch["damaged"]) == 2
+        for got, (start, length) in zip(ch["damaged"], ((zero_at, 256), (stale_at, 64))):
+            assert start <= got["frame"] and got["frame"] + got["frames"] <= start + length
+            assert got["frames"] >= length - 2
+    check(report, [{"requantization": "dithered", "bits_passed": 16, "damaged": ch["damaged"]}
+                   for ch in report["channels"]])
+    assert all("damaged in 2 stretch(es)" in line for line in report["summary"][1:])

@@ -25,6 +25,11 @@ channel:
    digital silence at zero, so a bias of the words is not taken for DC);
    captured words stuck at the channel's extreme where the source asks for
    more are clipped.
+   Words that miss by far more than any requantization error (more than 64
+   grid steps, 32 robust standard deviations and -60 dB of full scale) in
+   under 5 % of the sequence are **damaged** stretches (a dropout, a glitch,
+   a concealed lost block): they are reported with their frames and kept out
+   of the fits and of the verdict on the rest.
 5. **Words.**  The residual ``e = c - (s g + dc)`` is classified against the
    capture's grid step ``q`` (the lowest bit that ever toggles):
 
@@ -82,6 +87,12 @@ DRIFT_MIN_PPM = 1.0
 
 DITHER_MAX_RMS_STEPS = 8.0
 """Largest error rms (in steps of the capture's grid) still taken for dither; noise shaping raises it to a few steps."""
+
+DAMAGE_MAX_FRACTION = 0.05
+"""Above this share of damaged words the change is taken as the path's nature (``other``), not as damage."""
+
+DAMAGE_MERGE_FRAMES = 64
+"""Damaged words closer than this form one stretch."""
 
 REQUANTIZATIONS = ("none", "truncation", "rounding", "dithered", "other")
 
@@ -244,7 +255,8 @@ def _missing_channel(ch):
     return {"channel": ch.index, "source_channel": None, "transparent": False, "marker_correlation": round(abs(ch.rho), 4),
             "latency_frames": None, "word_errors": None, "bits_passed": 0, "polarity": None, "gain_db": None,
             "dc_offset_lsb": None, "slips": [], "drift_ppm": None, "clipped": None, "requantization": None,
-            "frames_compared": 0, "frames_missing": None, "dither_in_silence": None}
+            "frames_compared": 0, "frames_missing": None, "dither_in_silence": None, "damaged": [],
+            "damaged_frames": 0}
 
 
 def _length_from_tail(found, seed, bits, samplerate):
@@ -423,6 +435,14 @@ def _analyse_channel(ch, s, secs, bits, frames):
         fit = sname != "silence"
     a = np.vstack([sw[fit], np.ones(fit.sum())]).T
     (g, b), *_ = np.linalg.lstsq(a, cw[fit], rcond=None)
+    damaged_mask, damaged = _damage(sw, cw, su, g, b, fit, bits)
+    if damaged:
+        # Fit again without the damaged stretches, which would pull the gain.
+        refit = fit & ~damaged_mask
+        if refit.sum() >= 16:
+            a = np.vstack([sw[refit], np.ones(refit.sum())]).T
+            (g, b), *_ = np.linalg.lstsq(a, cw[refit], rcond=None)
+    intact = ~damaged_mask
     polarity = 1 if g >= 0 else -1
     gain_db = round(20 * math.log10(max(abs(g), 1e-30)), 2)
     if abs(gain_db) < 0.005:
@@ -430,7 +450,7 @@ def _analyse_channel(ch, s, secs, bits, frames):
     g_used = polarity * (1.0 if gain_db == 0.0 else abs(g))
 
     # DC from digital silence: constant words there are an offset; dither averages to zero.
-    quiet = cw[sname == "silence"]
+    quiet = cw[(sname == "silence") & intact]
     dc = 0.0
     dither_in_silence = False
     if quiet.size:
@@ -442,10 +462,10 @@ def _analyse_channel(ch, s, secs, bits, frames):
     dc_report = round(dc, 3)
 
     expected = g_used * sw + dc
-    c_max, c_min = float(cw.max()), float(cw.min())
-    step = _grid_step(cw)
+    c_max, c_min = float(cw[intact].max()), float(cw[intact].min())
+    step = _grid_step(cw[intact])
     tol = max(2.0 * max(step, 1), 1e-6 * top)
-    at_max, at_min = cw >= c_max - 1e-9, cw <= c_min + 1e-9
+    at_max, at_min = intact & (cw >= c_max - 1e-9), intact & (cw <= c_min + 1e-9)
     # A channel clips at its extreme when some source word asks for clearly more (beyond the
     # requantization error); then every word stuck there whose source asks for more is clipped.
     clips_high = bool(np.any(at_max & (expected > c_max + tol)))
@@ -455,7 +475,7 @@ def _analyse_channel(ch, s, secs, bits, frames):
     # Words whose source lies within two steps of the extremes may be saturated by the requantizer
     # itself (a word rounded up past full scale): they count as word errors, not as evidence of the kind.
     edge_step = 2.0 * max(step, 1)
-    keep = ~clipped_mask & (expected <= c_max - edge_step) & (expected >= c_min + edge_step)
+    keep = intact & ~clipped_mask & (expected <= c_max - edge_step) & (expected >= c_min + edge_step)
     e = cw[keep] - expected[keep]
     ref = expected[keep]
     word_errors = int(np.count_nonzero(np.abs(cw - polarity * sw) > 1e-9))
@@ -468,6 +488,7 @@ def _analyse_channel(ch, s, secs, bits, frames):
     e_full = e[sname[keep] == "full"]
     result.update({
         "polarity": polarity, "gain_db": gain_db, "dc_offset_lsb": dc_report, "clipped": clipped,
+        "damaged": damaged, "damaged_frames": int(damaged_mask.sum()),
         "word_errors": word_errors, "requantization": requant, "bits_passed": bits_passed,
         "dither_in_silence": bool(dither_in_silence),
         "error_mean_lsb": round(float(np.mean(e_full)), 4) if e_full.size else 0.0,
@@ -475,8 +496,47 @@ def _analyse_channel(ch, s, secs, bits, frames):
     })
     result["transparent"] = bool(
         result["source_channel"] == ch.index and word_errors == 0 and not slips and frames_missing == 0
-        and polarity == 1 and gain_db == 0.0 and dc_report == 0.0 and clipped == 0 and requant == "none")
+        and polarity == 1 and gain_db == 0.0 and dc_report == 0.0 and clipped == 0 and requant == "none"
+        and not damaged)
     return result
+
+
+def _damage(sw, cw, su, g, b, fit, bits):
+    """Stretches of words far beyond any requantization error: a dropout, a glitch, a concealed lost block.
+
+    A word is damaged when it misses ``g s + b`` by more than 64 grid steps, 32 robust standard
+    deviations of the error of the full-range words, and 2^(N-10) LSB (-60 dB of full scale), and
+    is not stuck at the channel's extreme (clipping is counted apart).  Damaged words less than 64
+    frames apart form one stretch.  When more than 5 % of the words would be damaged, the change
+    is the path's nature, not damage: nothing is set apart.
+
+    Returns
+    -------
+    (numpy.ndarray, list of dict)
+        Mask over the compared words, and the stretches as ``{"frame", "frames"}`` in sequence frames.
+    """
+    mask = np.zeros(cw.shape[0], dtype=bool)
+    if cw.size == 0:
+        return mask, []
+    expected = g * sw + b
+    resid = cw - expected
+    r_fit = resid[fit]
+    sigma = 1.4826 * float(np.median(np.abs(r_fit - np.median(r_fit)))) if r_fit.size else 0.0
+    step = max(_grid_step(cw), 1)
+    threshold = max(64.0 * step, 32.0 * sigma, float(1 << (bits - 10)))
+    c_max, c_min = float(cw.max()), float(cw.min())
+    stuck = ((cw >= c_max - 1e-9) & (expected > c_max)) | ((cw <= c_min + 1e-9) & (expected < c_min))
+    idx = np.nonzero((np.abs(resid) > threshold) & ~stuck)[0]
+    if idx.size == 0 or idx.size > DAMAGE_MAX_FRACTION * cw.size:
+        return mask, []
+    breaks = np.nonzero(np.diff(idx) > DAMAGE_MERGE_FRAMES)[0]
+    firsts = np.concatenate(([idx[0]], idx[breaks + 1]))
+    lasts = np.concatenate((idx[breaks], [idx[-1]]))
+    stretches = []
+    for first, last in zip(firsts, lasts):
+        mask[first : last + 1] = True
+        stretches.append({"frame": int(su[first]), "frames": int(su[last] - su[first] + 1)})
+    return mask, stretches
 
 
 def _classify(e, ref, step, grid_bits, bits):
@@ -558,7 +618,7 @@ def _drifting_channel(result, ch, s, starts, track, x, bits, sw, cw):
         "polarity": polarity, "gain_db": gain_db, "dc_offset_lsb": 0.0, "clipped": extreme,
         "word_errors": int(np.count_nonzero(np.abs(cw - polarity * sw) > 1e-9)),
         "requantization": "other", "bits_passed": 0, "dither_in_silence": None,
-        "transparent": False,
+        "damaged": [], "damaged_frames": 0, "transparent": False,
     })
     return result
 
@@ -612,6 +672,10 @@ def _channel_line(r):
         parts.append(f"{abs(slip['count'])} sample(s) {what} at sequence frame {slip['frame']}")
     if r["clipped"]:
         parts.append(f"{r['clipped']} sample(s) clipped")
+    if r.get("damaged"):
+        first = r["damaged"][0]["frame"]
+        parts.append(f"{r['damaged_frames']} frame(s) damaged in {len(r['damaged'])} stretch(es) "
+                     f"(a dropout or glitch; the first at sequence frame {first})")
     req = r["requantization"]
     if req == "truncation":
         parts.append(f"truncated to {bits_text} (error biased by half a step)")
