@@ -478,6 +478,11 @@ def shaper_warnings(settings, samplerate, peak_dbfs=None):
 
         msg = rate_warning(shaper, samplerate)
         if msg:
+            from .shapers import family_members, family_of
+
+            family = family_of(shaper.id)
+            if family and float(samplerate) in family_members(family):
+                msg += f", or name the family (--shaper {family}) to follow the stream's rate"
             messages.append(msg)
     if shaper.ntaps and peak_dbfs is not None:
         from .design import headroom_warning

@@ -205,7 +205,7 @@ RATE_TAGS = {44100.0: "44k1", 48000.0: "48k", 88200.0: "88k2", 96000.0: "96k", 1
 """Suffixes of the shipped per-rate designs (``thr9-44k1``, ``gentle9-48k``)."""
 
 
-def _family(shaper_id):
+def family_of(shaper_id):
     """``thr9`` for ``thr9-48k``; None for an id without a rate suffix."""
     stem, _, tag = str(shaper_id).rpartition("-")
     return stem if stem and tag in RATE_TAGS.values() else None
@@ -225,7 +225,7 @@ def family_members(family, presets=None):
 def shaper_families(presets=None):
     """Ids of the shaper families among the preset shapers (``gentle9``, ``thr9``, ...), sorted."""
     presets = preset_shapers() if presets is None else presets
-    return tuple(sorted({_family(sid) for sid in presets} - {None}))
+    return tuple(sorted({family_of(sid) for sid in presets} - {None}))
 
 
 def fit_shaper_to_rate(shaper, samplerate):

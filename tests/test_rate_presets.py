@@ -55,3 +55,9 @@ def test_socket_accepts_a_family_and_the_engine_takes_the_rate_member():
             reply = client.request({"op": "set", "values": {"shaper": "gentle9"}})
             assert reply["ok"] is True, reply
         assert stack.target.engine.settings.shaper.id == "gentle9-44k1"
+
+
+def test_rate_warning_names_the_family():
+    engine = Engine(settings_from(None, shaper="thr9-44k1"), nchannels=1, samplerate=48000)
+    (message,) = shaper_warnings(engine.settings, 48000)
+    assert "--shaper thr9-48k" in message and "--shaper thr9)" in message

@@ -233,8 +233,10 @@ class LoudnessMeter:
     Notes
     -----
     Input is in full-scale units (1.0 = digital full scale), finite.  The
-    meter keeps one 100 ms power sum per hop (10 values a second, 36 000 an
-    hour), from which every reading is formed on demand.  A hop is 0.1 s
+    meter keeps one 100 ms power sum per hop and the power of every 400 ms and
+    3 s window ending on a hop (10 values a second each, 36 000 an hour),
+    formed once as the window's last hop arrives; the gated readings are
+    formed from them on demand.  A hop is 0.1 s
     rounded to whole frames (exact at 44.1, 48, 88.2, 96, 176.4 and 192 kHz).
     Readings are None (JSON null) until their window is full, or while the
     signal is silent.

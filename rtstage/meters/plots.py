@@ -329,9 +329,12 @@ def _histogram(plt, hist, dither, scale, coefs, title, directory):
     fig, ax = plt.subplots(figsize=FIGSIZE)
     ax.bar(edges[:-1], density, width=width, align="edge", alpha=0.55, color="C0",
            label=f"measured ({int(total):,} samples)")
-    nz = np.flatnonzero(counts)
-    if nz.size:
-        reach = max(abs(edges[nz[0]]), abs(edges[nz[-1] + 1]))
+    # Fitted to the data: the range holding all but 1 in 10 000 of the errors.
+    if counts.sum() > 0:
+        cum = np.cumsum(counts) / counts.sum()
+        lo = int(np.searchsorted(cum, 5e-5))
+        hi = int(np.searchsorted(cum, 1.0 - 5e-5))
+        reach = max(abs(edges[lo]), abs(edges[min(hi + 1, edges.size - 1)]))
     else:
         reach = 2.0
     if coefs:
