@@ -37,8 +37,9 @@ _NOTICE = []
 def _notice_once():
     if not _NOTICE:
         _NOTICE.append(1)
-        print("rtstage: notice: SCHED_FIFO is not permitted here; JACK dummy servers run --no-realtime",
-              file=sys.stderr, flush=True)
+        from ..log import log
+
+        log("notice: SCHED_FIFO is not permitted here; JACK dummy servers run --no-realtime")
 
 
 class JackDummyServer:

@@ -369,9 +369,9 @@ def start_notice(engine):
 
 
 def _log(message):
-    import sys
+    from ..log import log
 
-    print(f"rtstage: {message}", file=sys.stderr, flush=True)
+    log(message)
 
 
 def warm_meter_thread(block, samplerate, thread_class, **thread_kwargs):
