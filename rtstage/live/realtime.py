@@ -35,6 +35,7 @@ import ctypes.util
 import os
 import resource
 import threading
+import time
 
 import numpy as np
 
@@ -333,8 +334,12 @@ def engine_realtime(engine):
     reply = getattr(engine, "_worker_reply", None) or {}
     control = getattr(engine, "control_thread_info", None)
     if worker is not None and worker.poll() is None:
+        last = getattr(engine, "_realtime_last", None)
+        now = time.monotonic()
+        if last is not None and last["stream_process"]["pid"] == worker.pid and now - engine._realtime_at < 1.0:
+            return dict(last, control_thread=control)  # /proc is read at most once a second
         report = engine_status(worker.pid, reply.get("realtime"), control)
-        engine._realtime_last = report
+        engine._realtime_last, engine._realtime_at = report, now
         return report
     last = getattr(engine, "_realtime_last", None)
     if last is not None:
