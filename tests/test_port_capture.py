@@ -14,13 +14,14 @@ What is asserted strictly:
 * the tap equals the render bit for bit and has no dropped frames;
 * the capture, aligned on its first nonzero frame, equals the render word for
   word everywhere outside the stretches it lists as gaps;
-* every gap in the capture that the capture did not cause itself (a cycle it
-  missed shows in its own ``jack_last_frame_time`` record) is reported by
+* every gap in the capture that the capture did not cause itself (its own
+  late cycles show in its ``jack_last_frame_time`` record) is reported by
   rtstage, in its status and in the tap's gap record, at the same sample
-  index; and every period rtstage reports as lost shows in the capture.  A
-  machine-wide stall hits both clients in the same cycles: it is then either
-  the capture's own miss (excluded) or rtstage's reported loss (required to be
-  reported) -- never a silent loss.
+  index; every cycle the capture saw pass without a call is either in
+  rtstage's report or the capture's own miss (a period of content missing
+  there); and every period rtstage reports as lost shows in the capture.  A
+  stall of the machine or the server hits both clients in the same cycles:
+  it is then a shared jump, which rtstage must report -- never a silent loss.
 """
 
 import json
@@ -130,10 +131,13 @@ def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blo
     # own late cycle or reported by rtstage at the same sample index.
     for g in content_gaps:
         assert near(g["captured_frame"], late) or near(g["reference_frame"], reported_at), (g, port_gaps, late)
-    # (b) Every server cycle that passed without the stream, as the capture saw it, is reported by rtstage.
+    # (b) Every cycle the capture saw pass without a call is either reported by rtstage (the server's own stall,
+    # seen by every client) or the capture's alone (JACK2 wakes a client late for a whole cycle once for two
+    # cycles): then the capture missed a period of content there.
+    capture_missed = [g["captured_frame"] for g in content_gaps if g["frames"] > 0]
     for pos, n in jumps:
         if first + window < pos < last - window:
-            assert near(pos + offset, reported_at), ((pos, n), port_gaps)
+            assert near(pos + offset, reported_at) or near(pos, capture_missed), ((pos, n), port_gaps, content_gaps)
     # (c) Every loss rtstage reports is seen by the independent client: a server jump or a content gap.
     jump_frames = [pos + offset for pos, _ in jumps]
     for f in reported_at:

@@ -122,7 +122,9 @@ C_CB_DONE_NS = C_CB_START_NS + 1
 """CLOCK_MONOTONIC (ns) at which the latest callback returned."""
 C_CB_START_FRAME = C_CB_DONE_NS + 1
 """Engine sample index of the first frame of the latest callback (written with ``C_CB_START_NS``)."""
-C_END = C_CB_START_FRAME + 1
+C_LAST_CYCLE = C_CB_START_FRAME + 1
+"""Server frame at the start of the latest cycle the check saw."""
+C_END = C_LAST_CYCLE + 1
 
 REF_CALLBACKS = 16
 """Callbacks after a stream start that set the reference and are not timed."""
@@ -161,6 +163,7 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
         cycle = np.int64(_call_u32(ctl[C_JACK_LFT], ctl[C_JACK_CLIENT]))  # jack_last_frame_time: this cycle's start
         since = np.int64(_call_u32(ctl[C_JACK_FSCS], ctl[C_JACK_CLIENT]))  # jack_frames_since_cycle_start
         n = ctl[C_TIME_N]
+        ctl[C_LAST_CYCLE] = cycle
         if n == 0:
             ctl[C_CYCLE0] = cycle
             ctl[C_FRAMES0] = frames_before
@@ -310,6 +313,8 @@ def port_status(ctl, samplerate, blocksize, late_at=None):
         "periods_missing_or_repeated": int(ctl[C_SLIP_TOTAL]),
         "late_cycles": int(ctl[C_LATE_CYCLES]),
         "late_at_server_frame": list(late_at or []),
+        "first_server_frame": (int(ctl[C_CYCLE0]) + REF_CALLBACKS * period) % 2**32 if period else None,
+        "last_server_frame": int(ctl[C_LAST_CYCLE]) if period else None,
         "late_start_max_frames": int(ctl[C_PHASE_MAX]),
         "callback_max_us": round(max_ns / 1e3, 3),
         "callback_last_us": round(int(ctl[C_CB_NS_LAST]) / 1e3, 3),
