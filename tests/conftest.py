@@ -1,6 +1,6 @@
 """Shared fixtures.
 
-``jack_server``: a private JACK server (``jackd --no-realtime -d dummy``, 48 kHz,
+``jack_server``: a private JACK server (``jackd -d dummy``, ``--realtime`` where SCHED_FIFO is permitted, 48 kHz,
 64-frame period) started for the test module and stopped (SIGTERM, then
 SIGKILL) in teardown.  Clients get its name through
 ``jack_server.client_env()``.  The live tests need jackd and run in CI; they

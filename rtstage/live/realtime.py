@@ -314,6 +314,7 @@ def engine_status(worker_pid, worker_info, control_thread=None):
                            "locked_vm_bytes": memory_locked(worker_pid) if worker_pid else None,
                            "resident_bytes": memory_resident(worker_pid) if worker_pid else None,
                            "lock_error": info.get("lock_error"), "pages_touched": info.get("pages_touched"),
+                           "promoted_threads": info.get("promoted_threads"),
                            "threads": stream_threads},
         "audio_thread": ({"policy": audio["policy"], "priority": audio["priority"], "tid": audio["tid"]}
                          if audio else {"policy": "other", "priority": 0, "tid": None}),
@@ -401,3 +402,34 @@ def warm_meter_thread(block, samplerate, thread_class, **thread_kwargs):
     thread = thread_class(scratch, samplerate, **thread_kwargs)
     thread.step(final=True)
     return thread.latest()
+
+
+ALSA_AUDIO_PRIORITY = 70
+"""SCHED_FIFO priority given to PortAudio's ALSA callback thread (the level JACK clients run at under our servers)."""
+
+
+def thread_ids():
+    """Kernel thread ids of this process."""
+    try:
+        return {int(t) for t in os.listdir("/proc/self/task")}
+    except OSError:
+        return set()
+
+
+def promote_new_threads(before, priority=ALSA_AUDIO_PRIORITY):
+    """Put every thread of this process that is not in ``before`` under SCHED_FIFO at ``priority``.
+
+    Called right after PortAudio's ALSA host API started a stream: the new
+    thread is its callback thread, which it creates with the default policy
+    (``PaAlsa_EnableRealtimeScheduling`` sets attributes that glibc ignores
+    without ``PTHREAD_EXPLICIT_SCHED``: tried here, the thread stayed
+    SCHED_OTHER).  Returns the thread ids promoted.
+    """
+    done = []
+    for tid in sorted(thread_ids() - set(before)):
+        try:
+            os.sched_setscheduler(tid, os.SCHED_FIFO, os.sched_param(int(priority)))
+            done.append(tid)
+        except OSError:
+            pass
+    return done

@@ -136,7 +136,12 @@ def stream(args):
     frame_clock.install(block.ctl)
     try:
         s = open_stream(block, args.samplerate, args.blocksize, out_index, in_index, args.latency, args.callback)
+        from .realtime import promote_new_threads, thread_ids
+
+        before = thread_ids()
         s.start()
+        if "ALSA" in args.hostapi_name and rt_info["realtime_permitted"]:
+            rt_info["promoted_threads"] = promote_new_threads(before)  # PortAudio's ALSA thread to SCHED_FIFO
     except Exception as exc:
         _reply({"ok": False, "error": str(exc)})
         os._exit(EXIT_OPEN_FAILED)
