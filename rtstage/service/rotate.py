@@ -191,20 +191,25 @@ class BoundarySnapshots:
     segment_frames : int
         Frames per segment: the boundaries are its multiples.
     lead_s : float
-        How long before a boundary the thread starts polling closely.
+        How long before a boundary the thread polls every millisecond.
+    poll_s : float
+        Snapshot interval further from a boundary.
 
     Notes
     -----
-    Far from a boundary the thread sleeps; within ``lead_s`` of it, it
-    polls every millisecond and keeps the latest snapshot taken at or
-    before the boundary.  :meth:`get` hands out the snapshot of boundary
+    The thread takes a snapshot every ``poll_s`` (a copy of a few hundred
+    numbers), every millisecond within ``lead_s`` of a boundary, and keeps
+    the latest one taken at or before the boundary, so a thread that gets
+    little CPU near a boundary still has an earlier snapshot to offer (the
+    re-render then starts a little earlier).  :meth:`get` hands out the snapshot of boundary
     ``b`` (kept for the last few boundaries).
     """
 
     KEEP = 16
 
-    def __init__(self, block, blocksize, samplerate, segment_frames, lead_s=0.05):
+    def __init__(self, block, blocksize, samplerate, segment_frames, lead_s=0.05, poll_s=0.02):
         self.block = block
+        self.poll_s = float(poll_s)
         self.blocksize = int(blocksize)
         self.samplerate = int(samplerate)
         self.segment_frames = int(segment_frames)
@@ -235,7 +240,7 @@ class BoundarySnapshots:
         from .. import kernel as K
 
         clock = self.block.kernel.clock
-        best = None
+        best = None  # latest snapshot at or before the coming boundary
         boundary = None
         while not self._stop.is_set():
             frame = int(clock[K.CLK_FRAME])
@@ -249,15 +254,11 @@ class BoundarySnapshots:
                         for old in sorted(self._snaps)[:-self.KEEP]:
                             del self._snaps[old]
                 boundary = (frame // self.segment_frames + 1) * self.segment_frames
-                best = None
-            to_go_s = (boundary - frame) / self.samplerate
-            if to_go_s > self.lead_s:
-                self._stop.wait(min(to_go_s - self.lead_s, 0.5))
-                continue
             snap = take_state_snapshot(self.block, self.blocksize)
             if snap is not None and snap["frame"] <= boundary:
                 best = snap
-            self._stop.wait(0.001)
+            to_go_s = (boundary - int(clock[K.CLK_FRAME])) / self.samplerate
+            self._stop.wait(0.001 if to_go_s <= self.lead_s else self.poll_s)
 
 
 def segment_state(snapshot, boundary, log=None):
