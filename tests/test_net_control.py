@@ -93,6 +93,9 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
     final = json.load(open(st))
     assert final["streams"]["rtp_out"]["packets_sent"] == len(packets)
     assert final["control_changes_applied"] == 1
+    # The live meters run on this engine too: the final snapshot measured the stream's words.
+    levels = final["meters"]
+    assert levels["frame"] > 0 and all(isinstance(v, float) and v < 0 for v in levels["peak_dbfs"])
     # RFC 2974 §3: an announcement at the start and a deletion (T bit) at the stop, both carrying the SDP.
     assert [(p[0] >> 2) & 1 for p in announcements] == [0, 1]
     assert f"m=audio {sink.port} RTP/AVP 96".encode() in announcements[0]

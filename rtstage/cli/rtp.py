@@ -87,11 +87,17 @@ class Announcements:
     def __enter__(self):
         args = self.args
         if args.rtp_sdp:
-            try:
-                with open(args.rtp_sdp, "w", newline="") as f:
-                    f.write(self.text)
-            except OSError as exc:
-                raise RtstageError(f"cannot write SDP file {args.rtp_sdp}: {exc.strerror or exc}") from None
+            plan = getattr(args, "output_plan", None)
+            if plan is not None:  # checked at start with the run's other outputs; written atomically
+                with plan:
+                    with plan.open(args.rtp_sdp, "w") as f:
+                        f.write(self.text)
+            else:
+                try:
+                    with open(args.rtp_sdp, "w", newline="") as f:
+                        f.write(self.text)
+                except OSError as exc:
+                    raise RtstageError(f"cannot write SDP file {args.rtp_sdp}: {exc.strerror or exc}") from None
             log(f"wrote the session description {args.rtp_sdp}")
         if args.rtp_sap:
             from ..net.sap import SapAnnouncer, parse_sap_target

@@ -78,6 +78,8 @@ MODE_FILE = 1
 DEV_CAPACITY = 1 << 18
 """Send deviations kept (the last 262144 packets: 4.4 min at 1 ms)."""
 DEFAULT_RT_PRIORITY = 70
+MAX_BLOCK_FRAMES = 4096
+"""Rows of the meter tap: the largest block metered (an input packet holds far fewer frames)."""
 PRODUCER_LEAD_S = 0.0025
 """How far ahead of its send time a packet is computed (about; see ``prepare``): a producer woken late by
 less than this never delays a send."""
@@ -91,7 +93,8 @@ _WAIT_NS = 20_000
 @njit(nogil=True, cache=True)
 def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, gen_amp, gen_seed, src, loop_src,
                   xbuf, ybuf, vq, genw, iparams, fparams, hist, counts, kclock, ramp, rng_words, rng_tag,
-                  net_ring, tap_ring, ts, pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, lead_frames):
+                  net_ring, tap_ring, ts, pctl, pending_ip, pending_fp, scratch_ip, scratch_fp, lead_frames,
+                  meter_x, meter_w, yq):
     k = 0
     while ctl[C_STOP] == 0:
         deadline = N.sample_time_ns(q0, r0, rate, (k + 1) * fpp - lead_frames)
@@ -125,7 +128,8 @@ def _produce_loop(ctl, clock_id, q0, r0, rate, fpp, mode, gen_kind, gen_freq, ge
         else:
             fill_generated(gen_kind, gen_freq, gen_amp, gen_seed, rate, ctl[C_FRAMES], xbuf, n, genw)
         if n > 0:
-            K.process_block(xbuf, ybuf, vq, n, iparams, fparams, hist, counts, kclock, ramp, rng_words, rng_tag)
+            K.process_block(xbuf, ybuf, vq, n, iparams, fparams, hist, counts, kclock, ramp, rng_words, rng_tag, yq)
+            S.meter_ring_write(pctl, meter_x, meter_w, vq, yq, n)
             N.ring_write(ctl, C_NET_HEAD, C_NET_TAIL, C_NET_DROPPED, net_ring, ybuf, n)
             N.ring_write(ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, tap_ring, ybuf, n)
             ctl[C_FRAMES] += n
@@ -184,24 +188,25 @@ def _send_loop(ctl, clock_id, paced, q0, r0, rate, fpp, net_ring, words, pkt, fd
             return
 
 
-class _ControlBlock:
-    """What the control layer reaches of an engine: kernel state, and the seqlock of pending parameters.
+def _shared_block(engine, max_frames, meter_frames):
+    """A :class:`rtstage.live.shared.SharedBlock` holding ``engine``'s kernel state, which the engine then runs on.
 
-    The same layout as :class:`rtstage.live.shared.SharedBlock` where the two
-    meet (``ctl`` indices ``C_PARAM_SEQ``, ``C_APPLIED_*``; ``kernel``), so
-    :class:`rtstage.control.live_target.LiveTarget` drives either.
+    The control layer (:class:`rtstage.control.live_target.LiveTarget`: seqlock,
+    ``applied``, counters) and the meters (:class:`rtstage.live.meterthread.MeterThread`:
+    the meter ring) then drive and read this engine exactly as they do a live one.
     """
+    out_bits = 16 if engine.dtype == np.int16 else 32
+    block = S.SharedBlock(engine.nchannels, out_bits, max_frames, 0, 0, meter_frames)
+    for dst, src in zip(block.kernel.arrays(), engine.state.arrays()):
+        dst[...] = src
+    engine.state = block.kernel
+    block.pending_ip[:] = block.kernel.iparams
+    block.pending_fp[:] = block.kernel.fparams
+    return block
 
-    def __init__(self, engine):
-        self.kernel = engine.state
-        self.ctl = np.zeros(S.C_LEN, dtype=np.int64)
-        self.pending_ip = engine.state.iparams.copy()
-        self.pending_fp = engine.state.fparams.copy()
-        self.scratch_ip = np.zeros_like(self.pending_ip)
-        self.scratch_fp = np.zeros_like(self.pending_fp)
 
-    def seqlock(self):
-        return self.ctl, self.pending_ip, self.pending_fp, self.scratch_ip, self.scratch_fp
+def _seqlock(block):
+    return block.ctl, block.pending_ip, block.pending_fp, block.scratch_ip, block.scratch_fp
 
 
 class _TapThread:
@@ -287,7 +292,7 @@ class NetEngine:
     """
 
     def __init__(self, settings, source, samplerate=None, channels=None, rtp_out=None, tap=None, clock="local",
-                 rt_priority=DEFAULT_RT_PRIORITY, loop=False, block_ms=1.0):
+                 rt_priority=DEFAULT_RT_PRIORITY, loop=False, block_ms=1.0, meters=True):
         self.settings = settings
         self.source = source
         self.samplerate = samplerate
@@ -301,6 +306,8 @@ class NetEngine:
         self.rt_priority = int(rt_priority)
         self.loop = bool(loop)
         self.block_ms = float(block_ms)
+        self.meters_on = bool(meters)
+        self.meter_thread = None
         self.state = "new"
         self.block = None
         self.out = None
@@ -347,7 +354,6 @@ class NetEngine:
         self.channels = int(self.channels)
         self.engine = Engine(self.settings, self.channels, self.samplerate)
         self.settings = self.engine.settings
-        self.block = _ControlBlock(self.engine)
         rate = self.samplerate
         if self.rtp_out_options is not None:
             self.out = RtpOutConfig(samplerate=rate, channels=self.channels, bits=self.settings.bits,
@@ -358,6 +364,8 @@ class NetEngine:
             self.fpp = max(1, int(round(self.block_ms * rate / 1000.0)))
         self.blocksize = self.fpp
         """Frames per block of the clocked thread (the control layer's block period)."""
+        meter_frames = max(rate, 8 * MAX_BLOCK_FRAMES) if self.meters_on else 0
+        self.block = _shared_block(self.engine, max(self.fpp, MAX_BLOCK_FRAMES), meter_frames)
         nch = self.channels
         dtype = self.engine.dtype
         self.ctl = np.zeros(C_LEN, dtype=np.int64)
@@ -370,13 +378,14 @@ class NetEngine:
         self.lead_frames = lead_packets * self.fpp - (self.fpp // 2 if PRODUCER_OFFSET else 0)
         self.xbuf = np.zeros((self.fpp, nch), dtype=np.float64)
         self.ybuf = np.zeros((self.fpp, nch), dtype=dtype)
-        self.vq = np.zeros((0, nch), dtype=np.float64)
+        self.vq = self.block.vq
         self.genw = np.zeros((nch, 4), dtype=np.uint64)
         self.devs = np.zeros(DEV_CAPACITY, dtype=np.int64)
         for arr in (self.net_ring, self.tap_ring, self.devs):
             arr.fill(1)  # touch every page now: no page fault on the clocked threads' first writes
             arr.fill(0)
         self._warm()
+        self._warm_meters()
         if self.tap_path:
             info = {"settings": self.settings.to_dict(), "samplerate": rate, "source": self.source.describe()}
             self._tap = _TapThread(self.tap_path, self.ctl, self.tap_ring, rate, self.settings.bits, info)
@@ -401,11 +410,12 @@ class NetEngine:
         mode = MODE_FILE if getattr(self.source, "kind", None) == "file" else MODE_GENERATOR
         _produce_loop(ctl, self.clock_id, 0, 0, self.samplerate, self.fpp, mode, kind, freq, amp, seed, self._src,
                       0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(), self.net_ring, self.tap_ring, ts,
-                      *self.block.seqlock(), self.fpp)
+                      *_seqlock(self.block), self.fpp, self.block.meter_x, self.block.meter_words,
+                      self.block.requantized)
         S.publish_params(np.zeros(S.C_LEN, dtype=np.int64), self.block.pending_ip.copy(), self.block.pending_fp.copy(),
                          self.block.pending_ip, self.block.pending_fp)
         # The kernel itself, once on silence, on a scratch state.
-        K.process_block(self.xbuf, self.ybuf, self.vq, self.fpp, *st.arrays())
+        K.process_block(self.xbuf, self.ybuf, self.vq, self.fpp, *st.arrays(), self.block.requantized)
         if self.out is not None:
             ctl[C_SEND_QUIT] = 1
             _send_loop(ctl, self.clock_id, True, 0, 0, self.samplerate, self.out.frames, self.net_ring, self.ybuf,
@@ -431,6 +441,7 @@ class NetEngine:
             self.prepare()
         if self._tap is not None:
             self._tap.start()
+        self._start_meters()
         rate = self.samplerate
         # The first packet's first sample lies 10 ms ahead: time for the threads to reach their loops.
         start_sample = (N.clock_now_ns(self.clock_id) + 10_000_000) * rate // N.NS_PER_S + 1
@@ -465,8 +476,8 @@ class NetEngine:
             def produce():
                 _produce_loop(self.ctl, self.clock_id, q0, r0, rate, self.fpp, mode, kind, freq, amp, seed, self._src,
                               1 if self.loop else 0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(),
-                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *self.block.seqlock(),
-                              self.lead_frames)
+                              self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *_seqlock(self.block),
+                              self.lead_frames, self.block.meter_x, self.block.meter_words, self.block.requantized)
 
             self._thread("engine-clock", produce).start()
         log(f"running without a device: {rate} Hz, {self.channels} ch, {self.settings.bits}-bit "
@@ -485,11 +496,16 @@ class NetEngine:
             pctl = self.block.ctl
             pctl[T.C_CB_START_FRAME] = self.engine.frame
             pctl[T.C_CB_START_NS] = time.monotonic_ns()
-            S.take_params(*self.block.seqlock(), *self.engine.state.arrays()[:2], self.engine.frame)
+            S.take_params(*_seqlock(self.block), *self.engine.state.arrays()[:2], self.engine.frame)
             if self._in_y.shape[0] < n:
                 self._in_y = np.zeros((n, self.channels), dtype=self.engine.dtype)
             y = self._in_y[:n]
-            self.engine.process(x, out=y)
+            b = self.block
+            if n <= b.vq.shape[0]:
+                self.engine.process(x, out=y, quantizer_in=b.vq, requantized=b.requantized)
+                S.meter_ring_write(pctl, b.meter_x, b.meter_words, b.vq, b.requantized, n)
+            else:  # a packet larger than the meter tap: processed, not metered
+                self.engine.process(x, out=y)
             N.ring_write(self.ctl, C_NET_HEAD, C_NET_TAIL, C_NET_DROPPED, self.net_ring, y, n)
             N.ring_write(self.ctl, C_TAP_HEAD, C_TAP_TAIL, C_TAP_DROPPED, self.tap_ring, y, n)
             self.ctl[C_FRAMES] += n
@@ -551,6 +567,11 @@ class NetEngine:
                 t.join(1.0)
         self.state = "stopped"
         status = self.status()
+        if self.meter_thread is not None:
+            self.meter_thread.stop()
+            if self.meter_thread.error is not None:
+                log(f"meter thread failed: {self.meter_thread.error}")
+            status["meters"] = self.meters()
         if self._tap is not None:
             if self.receiver is not None:  # the tap starts at sample 0 with the stream: tap frame = engine frame
                 self._tap.gaps = [{"tap_frame": g["engine_frame"], **g} for g in self.receiver.gaps]
@@ -592,12 +613,51 @@ class NetEngine:
             time.sleep(0.001)
 
     def meters(self):
-        """Engine counters and the per-stream figures (no level meters without a device yet)."""
+        """The latest meter snapshot (levels, noise, true peak, loudness) with the per-stream figures."""
+        thread = self.meter_thread
+        snap = thread.latest() if thread is not None else None
         status = self.status()
         nch = self.channels or 0
-        return {"frame": status["engine_frame"], "peak_dbfs": [None] * nch, "rms_dbfs": [None] * nch,
-                "clipped": status["clipped"], "nonfinite": status["nonfinite"], "levels_available": False,
-                "state": status["state"], "streams": status["streams"]}
+        if snap is None:
+            snap = {"frame": 0, "peak_dbfs": [None] * nch, "rms_dbfs": [None] * nch, "clipped": status["clipped"],
+                    "nonfinite": status["nonfinite"], "levels_available": thread is not None}
+        out = dict(snap)
+        out.update({"state": status["state"], "auto_muted": status["auto_muted"], "streams": status["streams"]})
+        return out
+
+    def _warm_meters(self):
+        """Compile (or load from the cache) every meter kernel before anything runs, as the live engine does."""
+        if not self.meters_on:
+            return
+        from ..live.meterthread import MeterThread
+        from ..live.realtime import warm_meter_thread
+        from ..meters import MeterBank
+
+        s = self.settings
+        shaper = s.shaper
+        width = 16 if self.engine.dtype == np.int16 else 32
+        warm = MeterBank(self.channels, self.samplerate, s.bits, shaper.coefs, s.dither, s.dither_scale,
+                         out_shift=width - s.bits, shaper_id=shaper.id)
+        warm.update(np.zeros((4096, self.channels)), np.zeros((4096, self.channels), dtype=self.engine.dtype))
+        warm.report()
+        warm_meter_thread(self.block, self.samplerate, MeterThread)
+
+    def _start_meters(self):
+        """Start the meter thread on the meter ring."""
+        if not self.meters_on or self.meter_thread is not None:
+            return
+        from ..live.meterthread import MeterThread
+
+        shaper = self.settings.shaper
+        names = {tuple(shaper.coefs): shaper.id}
+
+        def shaper_name(coefs):
+            current = self.settings.shaper
+            if hasattr(current, "coefs"):
+                names.setdefault(tuple(current.coefs), current.id)
+            return names.get(tuple(coefs))
+
+        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=shaper_name).start()
 
     # --- figures -------------------------------------------------------------------------
     def send_deviations_ns(self):
@@ -629,6 +689,7 @@ class NetEngine:
             "realtime": dict(self.realtime),
             "wake_late_max_ms": round(int(ctl[C_WAKE_LATE_MAX]) / 1e6, 6),
             "clipped": engine.clipped.tolist() if engine is not None else [],
+            "auto_muted": engine.auto_muted.tolist() if engine is not None else [],
             "nonfinite": engine.nonfinite.tolist() if engine is not None else [],
             "streams": {},
         }
