@@ -34,7 +34,8 @@ def test_rtp_output_path(tmp_path, bits, dither, encoding, verdict):
     sink = PacketCollector()
     try:
         result = subprocess.run(
-            [sys.executable, "-m", "rtstage", "run", "--device", "none", "--control-port", "0", "--source", src,
+            [sys.executable, "-m", "rtstage", "run", "--device", "none", "--control-port", "0", "--blocksize", "48",
+             "--source", src,
              "--bits", str(bits), "--dither", dither, "--seed", "3", "--rtp-out", f"{LOOPBACK}:{sink.port}",
              "--rtp-encoding", encoding, "--quiet"],
             cwd=ROOT, env=ENV, capture_output=True, text=True, timeout=180)
