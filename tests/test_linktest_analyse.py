@@ -253,10 +253,12 @@ def test_cli_exit_codes_and_report(tmp_path, words, capsys):
     assert main(["linktest", "analyse", noise, "--seed", str(SEED)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert err[-1].startswith("rtstage:") and "not in the capture" in err[-1]
-    with pytest.raises(SystemExit) as exc:
-        main(["linktest", "analyse", good])
-    assert exc.value.code == 2
+    assert main(["linktest", "analyse", good]) == 2  # no --seed
     assert capsys.readouterr().err.strip().startswith("rtstage:")
+    # The report goes through the output policy: an existing one is kept unless --overwrite.
+    assert main(["linktest", "analyse", good, "--seed", str(SEED), "--report", report_path]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(["linktest", "analyse", good, "--seed", str(SEED), "--report", report_path, "--overwrite"]) == 0
 
 
 def test_gain_and_dither_in_one_path(tmp_path):

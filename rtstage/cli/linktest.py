@@ -70,7 +70,6 @@ def register(subparsers):
                     "truncation, rounding or dither), or play and record it live.",
         epilog=EXAMPLE, formatter_class=fmt)
     parser.set_defaults(handler=lambda args: _usage(parser))
-    _one_line_errors(parser)
     sub = parser.add_subparsers(dest="linktest_command", metavar="ACTION")
 
     p = sub.add_parser("generate", help="write the test sequence", formatter_class=fmt, epilog=EXAMPLE,
@@ -84,7 +83,6 @@ def register(subparsers):
                    help="length, rounded to the sequence's grid (default 10)")
     add_overwrite_options(p)
     p.set_defaults(handler=run_generate)
-    _one_line_errors(p)
 
     p = sub.add_parser("analyse", help="find the sequence in a capture and name what the path did", formatter_class=fmt,
                        epilog=EXAMPLE, description="Find the link test sequence in a capture of any length and compare "
@@ -96,8 +94,8 @@ def register(subparsers):
                    help="length given to generate (default: read from the end marker)")
     p.add_argument("--report", metavar="R.json", help="write the JSON report here")
     p.add_argument("--json", action="store_true", help="print the JSON report on stdout instead of the summary")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_analyse)
-    _one_line_errors(p)
 
     p = sub.add_parser("run", help="play and record the sequence at once, then analyse", formatter_class=fmt,
                        epilog=EXAMPLE, description="Play the sequence on the output device and record the input device "
@@ -118,23 +116,11 @@ def register(subparsers):
                    help="seconds of digital silence before the sequence (default 0.5)")
     p.add_argument("--tail", type=_non_negative_float, default=0.5,
                    help="seconds of silence recorded after it; must exceed the path's latency (default 0.5)")
-    p.add_argument("--capture", metavar="FILE.wav", help="also write the recording (float, exact) here")
+    p.add_argument("--capture", metavar="FILE.wav", help="also write the recording here (WAV, 32-bit float: exact)")
     p.add_argument("--report", metavar="R.json", help="write the JSON report here")
     p.add_argument("--json", action="store_true", help="print the JSON report on stdout instead of the summary")
     add_overwrite_options(p)
     p.set_defaults(handler=run_live)
-    _one_line_errors(p)
-
-
-def _one_line_errors(parser):
-    """Make argparse's usage errors one line on stderr beginning ``rtstage:`` (exit status 2)."""
-
-    def error(message):
-        print(f"rtstage: {parser.prog.replace('rtstage ', '', 1)}: {message} (see --help)", file=sys.stderr)
-        raise SystemExit(2)
-
-    parser.error = error
-    return parser
 
 
 def _usage(parser):
@@ -150,7 +136,7 @@ def run_generate(args):
     seq.check_shape(args.bits, args.samplerate, args.channels, seq.sequence_frames(args.samplerate, 1.0))
     frames = seq.sequence_frames(args.samplerate, args.seconds)
     log(seq.CAUTION)
-    write_sequence(args.output, args.seed, args.bits, args.samplerate, args.channels, frames, force=args.overwrite)
+    write_sequence(args.output, args.seed, args.bits, args.samplerate, args.channels, frames, overwrite=args.overwrite)
     log(f"wrote {args.output}: {frames} frames ({frames / args.samplerate:.3f} s), {args.channels} ch, "
         f"{args.bits}-bit words, {args.samplerate} Hz, seed {args.seed}")
     return 0
@@ -162,17 +148,27 @@ def _frames_for(args, samplerate):
     return seq.sequence_frames(samplerate, args.seconds) if args.seconds else None
 
 
-def _finish(report, args, extra=None):
+def _plan(args, activity, inputs=(), capture=None):
+    """The checked output plan of ``--report`` (and run's ``--capture``), before any work (rtstage.files.policy)."""
+    from ..files.policy import OutputPlan
+
+    plan = OutputPlan(activity, inputs=list(inputs), overwrite=args.overwrite)
+    if capture:
+        plan.add_file(capture, "--capture")
+    if args.report:
+        plan.add_file(args.report, "--report")
+    return plan.check()
+
+
+def _finish(report, args, plan, extra=None):
     from ..linktest.analyse import report_json
 
     if extra:
         report = {**report, **extra}
     if args.report:
-        try:
-            with open(args.report, "w") as f:
-                f.write(report_json(report) + "\n")
-        except OSError as exc:
-            raise RtstageError(f"cannot write {args.report}: {exc}") from None
+        plan.write_text(args.report, report_json(report) + "\n")
+    plan.commit()
+    if args.report:
         log(f"wrote the report {args.report}")
     if args.json:
         print(report_json(report))
@@ -189,10 +185,11 @@ def run_analyse(args):
 
     if not os.path.exists(args.capture):
         raise RtstageError(f"cannot read {args.capture}: no such file")
+    plan = _plan(args, f"analysing {args.capture}", inputs=[args.capture])
     data, samplerate = read_capture(args.capture)
     report = analyse(data, samplerate, args.seed, bits=args.bits, channels=args.channels,
                      frames=_frames_for(args, samplerate))
-    return _finish(report, args)
+    return _finish(report, args, plan)
 
 
 def run_live(args):
@@ -208,8 +205,7 @@ def run_live(args):
     seq.check_shape(args.bits, args.samplerate, args.channels, frames)
     if args.blocksize < 1 or args.blocksize > 1 << 16:
         raise RtstageError(f"blocksize must be 1..65536 frames, got {args.blocksize}")
-    if args.capture and os.path.exists(args.capture) and not args.overwrite:
-        raise RtstageError(f"{args.capture} exists; use --overwrite to replace it")
+    plan = _plan(args, "running the link test", capture=args.capture)
     log(seq.CAUTION)
     capture, figures = run_linktest(seed, args.bits, args.samplerate, args.channels, frames,
                                     output_device=args.output_device, input_device=args.input_device,
@@ -221,8 +217,9 @@ def run_live(args):
     if args.capture:
         import soundfile as sf
 
-        sf.write(args.capture, capture, args.samplerate, subtype="FLOAT")
-        log(f"wrote the recording {args.capture}")
+        with plan.atomic(args.capture) as tmp:
+            sf.write(tmp, capture, args.samplerate, subtype="FLOAT", format="WAV")
+        log(f"writing the recording {args.capture}")
     report = analyse(capture, args.samplerate, seed, bits=args.bits, channels=args.channels, frames=frames)
     preroll = int(round(args.preroll * args.samplerate))
     if report["found"]:
@@ -233,4 +230,4 @@ def run_live(args):
             if ch["latency_frames"] is not None:
                 ch["latency_frames"] -= preroll
         report["summary"] = summary_lines(report)
-    return _finish(report, args, {"stream": figures})
+    return _finish(report, args, plan, {"stream": figures})

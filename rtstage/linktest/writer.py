@@ -2,12 +2,11 @@
 
 The words go into a PCM container that holds them exactly: ``PCM_16`` for
 words of up to 16 bits, ``PCM_24`` above, left-justified (the low container
-bits zero).  The file is written under a temporary name beside the target and
-renamed when complete, so a reader never sees half a sequence.
+bits zero).  The file goes through the output policy
+(:mod:`rtstage.files.policy`), so a reader never sees half a sequence.
 """
 
 import os
-import tempfile
 
 import numpy as np
 
@@ -29,7 +28,7 @@ def left_justified(words, bits):
     return words.astype(np.int32) << np.int32(32 - int(bits))
 
 
-def write_sequence(path, seed, bits, samplerate, channels, frames, force=False, blocksize=BLOCK_FRAMES):
+def write_sequence(path, seed, bits, samplerate, channels, frames, overwrite=False, blocksize=BLOCK_FRAMES, plan=None):
     """Write the sequence to ``path`` (format from the extension); returns the frames written.
 
     Parameters
@@ -38,31 +37,41 @@ def write_sequence(path, seed, bits, samplerate, channels, frames, force=False, 
         Output sound file: .wav, .flac, .aiff, .w64 or .caf.
     seed, bits, samplerate, channels, frames
         The sequence (see :func:`rtstage.linktest.sequence.sequence_block`).
-    force : bool
-        Replace an existing file.
+    overwrite : bool
+        Replace an existing file (when this function makes its own output plan).
     blocksize : int
         Frames generated and written at a time (the file does not depend on it).
+    plan : rtstage.files.policy.OutputPlan or None
+        A checked plan that declares ``path`` (the caller commits it); None: one of its own.
+
+    Notes
+    -----
+    The file goes through the output policy (:mod:`rtstage.files.policy`):
+    refused before any work if it exists (without ``overwrite``) or is a
+    folder, written under a temporary name, fsync'd and renamed into place.
     """
     import soundfile as sf
+
+    from ..files.policy import OutputPlan
 
     seq.check_shape(bits, samplerate, channels, frames)
     ext = os.path.splitext(path)[1].lower()
     if ext not in FORMATS:
         raise RtstageError(f"cannot tell the output format from '{path}' (use one of: {', '.join(FORMATS)})")
-    if os.path.exists(path) and not force:
-        raise RtstageError(f"{path} exists; use --overwrite to replace it")
-    directory = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(prefix=".linktest-", suffix=ext, dir=directory)
-    os.close(fd)
+    subtype = container_subtype(bits)
+    own = plan is None
+    if own:
+        plan = OutputPlan(f"writing the link test sequence {path}", overwrite=overwrite)
+        plan.add_file(path, "output", size_bytes=int(frames) * int(channels) * (2 if subtype == "PCM_16" else 3))
+        plan.check()
     try:
-        with sf.SoundFile(tmp, "w", int(samplerate), int(channels), container_subtype(bits), format=FORMATS[ext]) as f:
-            for start in range(0, int(frames), int(blocksize)):
-                block = seq.sequence_block(seed, bits, samplerate, channels, frames, start, blocksize)
-                f.write(left_justified(block, bits))
-        os.replace(tmp, path)
-    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        with plan.atomic(path) as tmp:
+            with sf.SoundFile(tmp, "w", int(samplerate), int(channels), subtype, format=FORMATS[ext]) as f:
+                for start in range(0, int(frames), int(blocksize)):
+                    block = seq.sequence_block(seed, bits, samplerate, channels, frames, start, blocksize)
+                    f.write(left_justified(block, bits))
+    except (sf.LibsndfileError, RuntimeError) as exc:
         raise RtstageError(f"cannot write {path}: {exc}") from None
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    if own:
+        plan.commit()
     return int(frames)
