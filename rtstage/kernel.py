@@ -125,6 +125,9 @@ IP_AUTO_MUTE = 8
 """1: mute a channel whose input has been exact digital zero for IP_HOLD_FRAMES frames."""
 IP_HOLD_FRAMES = 9
 """Auto-mute hold time in frames (at least 1)."""
+IP_CHANNEL0 = 10
+"""Channel number of the first channel in the arrays (0 unless a driver runs a group of a
+stream's channels on its own; the dither key uses ``IP_CHANNEL0 + c``)."""
 IP_LEN = 12
 
 # --- float parameters (float64) -----------------------------------------------------
@@ -341,7 +344,7 @@ def _round_clamp(value, lo, hi):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def _fill_dither(kind, seed, nch, first_index, count, dscale, rng_words, dith):
+def _fill_dither(kind, seed, nch, channel0, first_index, count, dscale, rng_words, dith):
     """Dither of samples ``first_index .. first_index + count - 1`` of every channel, times ``dscale``.
 
     Channel c's values land in ``dith[_scratch(c) + 2 * j]``, j < count
@@ -350,23 +353,23 @@ def _fill_dither(kind, seed, nch, first_index, count, dscale, rng_words, dith):
     used.  One call per chunk, ahead of the chunk's frame loop: the blocks are
     independent of each other and of the feedback loop, so they run back to
     back at full throughput instead of waiting between the loop's serial
-    steps.  The values are those of :func:`_dither` times ``dscale``, the same
-    operations in the same order.
+    steps.  Channel c's key is ``(seed, channel0 + c)``.
     """
     for c in range(nch):
         base = _scratch(c)
         row = c * RNG_RING_BLOCKS + RNG_SCRATCH_ROW
+        key = np.uint64(channel0 + c)
         a_prev = 0.0
         if kind == DITHER_TPDF_HP:
             before = first_index - 1
             philox4x64(np.uint64(before >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
-                       np.uint64(c), rng_words, row)
+                       key, rng_words, row)
             a_prev = _uniform(rng_words[row, before & 3] & _LOW32)
         for j in range(count):
             index = first_index + j
             if j == 0 or (index & 3) == 0:
                 philox4x64(np.uint64(index >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
-                           np.uint64(c), rng_words, row)
+                           key, rng_words, row)
             w = rng_words[row, index & 3]
             a = _uniform(w & _LOW32)
             if kind == DITHER_TPDF:
@@ -682,7 +685,7 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
     while n_lo < nframes:
         n_hi = min(n_lo + CHUNK_FRAMES, nframes)
         if dithered:
-            _fill_dither(kind, seed, nch, frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
+            _fill_dither(kind, seed, nch, iparams[IP_CHANNEL0], frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
         at_rest_all = (ramp_left == 0 and eramp_left == 0 and mode == MON_REQUANTIZED and w0 == ramp_frames
                        and w1 == 0 and w2 == 0 and mute_pos == 0 and mute_target == 0 and not auto_mute)
         if at_rest_all:
