@@ -203,7 +203,7 @@ FRAMES_PER_BLOCK_SHIFT = 2
 """A Philox block serves 2**FRAMES_PER_BLOCK_SHIFT = 4 frames of a channel."""
 CHUNK_FRAMES = 64
 """Frames per chunk: the kernel computes a chunk's Philox blocks, then runs its frames."""
-RNG_RING_BLOCKS = 128
+RNG_RING_BLOCKS = 82
 """Rows of 4 words per channel in ``rng_words``, a scratch area of the kernel: the chunk's
 dither values (as float64, 4 to a row), the lean loop's error window, and, in row
 RNG_SCRATCH_ROW, the Philox block being used.  Nothing is carried in it from one call to
@@ -678,12 +678,14 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
     dithered = kind != DITHER_NONE
     dith = rng_words.view(np.float64).reshape(-1)
 
+    # Many channels run in shorter chunks, so that a chunk's scratch stays in the first-level cache.
+    chunk_frames = CHUNK_FRAMES if nch <= 8 else max(CHUNK_FRAMES // 4, (CHUNK_FRAMES * 8) // nch)
     # The block runs in chunks of at most CHUNK_FRAMES frames: first the chunk's dither
     # for every channel, then its frames, through the lean loop when nothing moves
     # (constant gain, requantized words, no mute or auto-mute) and the general loop otherwise.
     n_lo = 0
     while n_lo < nframes:
-        n_hi = min(n_lo + CHUNK_FRAMES, nframes)
+        n_hi = min(n_lo + chunk_frames, nframes)
         if dithered:
             _fill_dither(kind, seed, nch, iparams[IP_CHANNEL0], frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
         at_rest_all = (ramp_left == 0 and eramp_left == 0 and mode == MON_REQUANTIZED and w0 == ramp_frames
