@@ -95,7 +95,9 @@ auto-mute, for meters that measure the real requantized output.
 import math
 
 import numpy as np
-from numba import njit
+from llvmlite import ir
+from numba import njit, types
+from numba.extending import intrinsic
 
 from ._philox import philox4x64
 
@@ -123,6 +125,9 @@ IP_AUTO_MUTE = 8
 """1: mute a channel whose input has been exact digital zero for IP_HOLD_FRAMES frames."""
 IP_HOLD_FRAMES = 9
 """Auto-mute hold time in frames (at least 1)."""
+IP_CHANNEL0 = 10
+"""Channel number of the first channel in the arrays (0 unless a driver runs a group of a
+stream's channels on its own; the dither key uses ``IP_CHANNEL0 + c``)."""
 IP_LEN = 12
 
 # --- float parameters (float64) -----------------------------------------------------
@@ -198,7 +203,7 @@ FRAMES_PER_BLOCK_SHIFT = 2
 """A Philox block serves 2**FRAMES_PER_BLOCK_SHIFT = 4 frames of a channel."""
 CHUNK_FRAMES = 64
 """Frames per chunk: the kernel computes a chunk's Philox blocks, then runs its frames."""
-RNG_RING_BLOCKS = 64
+RNG_RING_BLOCKS = 82
 """Rows of 4 words per channel in ``rng_words``, a scratch area of the kernel: the chunk's
 dither values (as float64, 4 to a row), the lean loop's error window, and, in row
 RNG_SCRATCH_ROW, the Philox block being used.  Nothing is carried in it from one call to
@@ -206,9 +211,9 @@ the next."""
 RNG_SCRATCH_ROW = RNG_RING_BLOCKS - 1
 DITHER_STRIDE = 4 * RNG_RING_BLOCKS
 """Distance between two channels' areas in the flat float64 view of ``rng_words``."""
-WINDOW_OFFSET = CHUNK_FRAMES
-"""Start of a channel's error window (MAX_TAPS errors before the chunk, then the chunk's)."""
-assert WINDOW_OFFSET + MAX_TAPS + CHUNK_FRAMES <= 4 * RNG_SCRATCH_ROW
+WINDOW_OFFSET = 2 * CHUNK_FRAMES
+"""Start of a pair's error window (MAX_TAPS errors before the chunk, then the chunk's; two lanes)."""
+assert WINDOW_OFFSET + 2 * (MAX_TAPS + CHUNK_FRAMES) <= 4 * RNG_SCRATCH_ROW
 RNG_TAG_FRAME = 0
 """Tag: the frame from which the ring is valid (-1: invalid)."""
 RNG_TAG_SEED = 1
@@ -339,32 +344,32 @@ def _round_clamp(value, lo, hi):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def _fill_dither(kind, seed, nch, first_index, count, dscale, rng_words, dith):
+def _fill_dither(kind, seed, nch, channel0, first_index, count, dscale, rng_words, dith):
     """Dither of samples ``first_index .. first_index + count - 1`` of every channel, times ``dscale``.
 
-    Channel c's values land in ``dith[c * DITHER_STRIDE + j]``, j < count
+    Channel c's values land in ``dith[_scratch(c) + 2 * j]``, j < count
     (``dith`` is the flat float64 view of ``rng_words``); the row
     ``c * RNG_RING_BLOCKS + RNG_SCRATCH_ROW`` holds the Philox block being
     used.  One call per chunk, ahead of the chunk's frame loop: the blocks are
     independent of each other and of the feedback loop, so they run back to
     back at full throughput instead of waiting between the loop's serial
-    steps.  The values are those of :func:`_dither` times ``dscale``, the same
-    operations in the same order.
+    steps.  Channel c's key is ``(seed, channel0 + c)``.
     """
     for c in range(nch):
-        base = c * DITHER_STRIDE
+        base = _scratch(c)
         row = c * RNG_RING_BLOCKS + RNG_SCRATCH_ROW
+        key = np.uint64(channel0 + c)
         a_prev = 0.0
         if kind == DITHER_TPDF_HP:
             before = first_index - 1
             philox4x64(np.uint64(before >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
-                       np.uint64(c), rng_words, row)
+                       key, rng_words, row)
             a_prev = _uniform(rng_words[row, before & 3] & _LOW32)
         for j in range(count):
             index = first_index + j
             if j == 0 or (index & 3) == 0:
                 philox4x64(np.uint64(index >> FRAMES_PER_BLOCK_SHIFT), np.uint64(0), np.uint64(0), np.uint64(0), seed,
-                           np.uint64(c), rng_words, row)
+                           key, rng_words, row)
             w = rng_words[row, index & 3]
             a = _uniform(w & _LOW32)
             if kind == DITHER_TPDF:
@@ -377,7 +382,7 @@ def _fill_dither(kind, seed, nch, first_index, count, dscale, rng_words, dith):
             else:
                 b = _uniform(w >> np.uint64(32))
                 d = 0.5 * math.sqrt(-2.0 * math.log(a + 0.5)) * math.cos(_TWO_PI * (b + 0.5))
-            dith[base + j] = d * dscale
+            dith[base + 2 * j] = d * dscale
 
 
 @njit(nogil=True, cache=True, inline="always")
@@ -415,6 +420,178 @@ def _u(i):
     return np.uint64(i)
 
 
+@intrinsic
+def _unlikely(typingctx, cond):
+    """``cond``, marked for the compiler as almost always false (``llvm.expect``).
+
+    The compiler then keeps a branch on it, which the processor predicts,
+    instead of a data dependence (a select) on the feedback loop's critical
+    path.  It changes no value.
+    """
+    sig = types.boolean(types.boolean)
+
+    def codegen(context, builder, signature, args):
+        bit = ir.IntType(1)
+        expect = builder.module.declare_intrinsic("llvm.expect", [bit], ir.FunctionType(bit, [bit, bit]))
+        return builder.call(expect, [args[0], ir.Constant(bit, 0)])
+
+    return sig, codegen
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _guard(e):
+    """The fed-back error as stored: 0 below _DENORMAL_GUARD (no denormal ever enters the state)."""
+    if _unlikely(abs(e) < _DENORMAL_GUARD):
+        return 0.0
+    return e
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _scratch(c):
+    """Offset of channel ``c``'s lane in the flat scratch: pairs (2i, 2i+1) share the area of channel 2i,
+    lane 0 and lane 1 interleaved, so that one pair's values sit side by side."""
+    return (c & ~1) * DITHER_STRIDE + (c & 1)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _nonfinite_in(x, n, c, counts, hist, dith, w0, w):
+    """Replace a non-finite sample of channel ``c``, count it, clear its history and window; returns the sample."""
+    xv = np.float64(x[n, c])
+    if math.isfinite(xv):
+        return xv
+    counts[c, CNT_NONFINITE] += 1
+    for k in range(HIST_LEN):
+        hist[c, k] = 0.0
+    for k in range(w0, w, 2):
+        dith[_u(k)] = 0.0
+    return _replace_nonfinite(xv)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _rest_pairs(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                q_lo, q_hi, fb_peak, shift, tap, wtap):
+    """Channel pairs (a, a + 1) of the lean loop, lane by lane side by side (see :func:`_rest_loop`)."""
+    nch = hist.shape[0]
+    h1 = fparams[FP_COEF0]
+    for a in range(0, nch - 1, 2):
+        b = a + 1
+        base = a * DITHER_STRIDE
+        w0 = base + WINDOW_OFFSET  # lane a at even, lane b at odd offsets
+        for k in range(1, ntaps + 1):
+            slot = (hpos0 - k) & HIST_MASK
+            dith[_u(w0 + 2 * (ntaps - k))] = hist[a, slot]
+            dith[_u(w0 + 2 * (ntaps - k) + 1)] = hist[b, slot]
+        slot = (hpos0 - 1) & HIST_MASK
+        ea = hist[a, slot]
+        eb = hist[b, slot]
+        for j in range(count):
+            n = _u(n_lo + j)
+            w = w0 + 2 * (ntaps + j)  # this frame's slot of lane a in the window
+            xa = np.float64(x[n, a])
+            xb = np.float64(x[n, b])
+            if not (math.isfinite(xa) and math.isfinite(xb)):
+                xa = _nonfinite_in(x, n, a, counts, hist, dith, w0, w)
+                xb = _nonfinite_in(x, n, b, counts, hist, dith, w0 + 1, w + 1)
+                if not math.isfinite(np.float64(x[n, a])):
+                    ea = 0.0
+                if not math.isfinite(np.float64(x[n, b])):
+                    eb = 0.0
+            va = xa * gain
+            vb = xb * gain
+            if tap:
+                vq[n, a] = va
+                vq[n, b] = vb
+            va = va * scale
+            vb = vb * scale
+            ua = va
+            ub = vb
+            if ntaps > 0:
+                fba = h1 * ea
+                fbb = h1 * eb
+                for k in range(2, ntaps + 1):
+                    hk = fparams[FP_COEF0 + k - 1]
+                    fba = fba + hk * dith[_u(w - 2 * k)]
+                    fbb = fbb + hk * dith[_u(w - 2 * k + 1)]
+                ua = va - fba
+                ub = vb - fbb
+            da = 0.0
+            db = 0.0
+            if dithered:
+                da = dith[_u(base + 2 * j)]
+                db = dith[_u(base + 2 * j + 1)]
+            qa = np.floor(ua + da + 0.5)
+            qb = np.floor(ub + db + 0.5)
+            ea = qa - ua
+            eb = qb - ub
+            if qa > q_hi or qa < q_lo or qb > q_hi or qb < q_lo:
+                if qa > q_hi or qa < q_lo:
+                    counts[a, CNT_CLIPPED] += 1
+                    qa, ea = _limit(qa, ua, q_lo, q_hi, fb_peak)
+                if qb > q_hi or qb < q_lo:
+                    counts[b, CNT_CLIPPED] += 1
+                    qb, eb = _limit(qb, ub, q_lo, q_hi, fb_peak)
+            ea = _guard(ea)
+            eb = _guard(eb)
+            dith[_u(w)] = ea
+            dith[_u(w + 1)] = eb
+            word_a = np.int64(qa) << shift
+            word_b = np.int64(qb) << shift
+            y[n, a] = word_a
+            y[n, b] = word_b
+            if wtap:
+                yq[n, a] = word_a
+                yq[n, b] = word_b
+        # the chunk's errors into the circular history (a clear above already zeroed the rest)
+        for j in range(count):
+            slot = (hpos0 + j) & HIST_MASK
+            hist[a, slot] = dith[_u(w0 + 2 * (ntaps + j))]
+            hist[b, slot] = dith[_u(w0 + 2 * (ntaps + j) + 1)]
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def _rest_single(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                 q_lo, q_hi, fb_peak, shift, tap, wtap, a):
+    """Channel ``a`` alone in the lean loop (the last of an odd channel count); lane 0 of its area."""
+    base = a * DITHER_STRIDE
+    w0 = base + WINDOW_OFFSET
+    for k in range(1, ntaps + 1):
+        dith[_u(w0 + 2 * (ntaps - k))] = hist[a, (hpos0 - k) & HIST_MASK]
+    ea = hist[a, (hpos0 - 1) & HIST_MASK]
+    for j in range(count):
+        n = _u(n_lo + j)
+        w = w0 + 2 * (ntaps + j)
+        xa = np.float64(x[n, a])
+        if not math.isfinite(xa):
+            xa = _nonfinite_in(x, n, a, counts, hist, dith, w0, w)
+            ea = 0.0
+        va = xa * gain
+        if tap:
+            vq[n, a] = va
+        va = va * scale
+        ua = va
+        if ntaps > 0:
+            fba = fparams[FP_COEF0] * ea
+            for k in range(2, ntaps + 1):
+                fba = fba + fparams[FP_COEF0 + k - 1] * dith[_u(w - 2 * k)]
+            ua = va - fba
+        da = 0.0
+        if dithered:
+            da = dith[_u(base + 2 * j)]
+        qa = np.floor(ua + da + 0.5)
+        ea = qa - ua
+        if qa > q_hi or qa < q_lo:
+            counts[a, CNT_CLIPPED] += 1
+            qa, ea = _limit(qa, ua, q_lo, q_hi, fb_peak)
+        ea = _guard(ea)
+        dith[_u(w)] = ea
+        word_a = np.int64(qa) << shift
+        y[n, a] = word_a
+        if wtap:
+            yq[n, a] = word_a
+    for j in range(count):
+        hist[a, (hpos0 + j) & HIST_MASK] = dith[_u(w0 + 2 * (ntaps + j))]
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
 def _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
                q_lo, q_hi, fb_peak, shift, tap, wtap):
@@ -422,110 +599,28 @@ def _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos0, fparams, hist, counts, dith, dit
 
     The arithmetic of each sample is that of the general loop in
     :func:`_process`, operation for operation, so the words and the state
-    are the same.  Channels run in pairs (lanes a and b), frame by frame
-    within the pair: the two recurrences are independent, so the processor
-    overlaps them.  Each one's newest error stays in a register (it is the
-    only operand on the feedback loop's critical path); the older ones are
-    read from a linear window (``dith`` from WINDOW_OFFSET on: the last
-    ``ntaps`` errors before the chunk, then the chunk's), so that the taps
-    are plain loads at fixed distances; the window is copied into the
-    circular history at the end.  The feedback sum starts from its first
-    product ``h_1·e[n-1]`` instead of ``0.0 + h_1·e[n-1]``: the two differ
-    only in the sign of an all-zero sum, which changes neither the word nor
-    the stored error (see the module notes).  Returns the history slot after
-    the last frame.
+    are the same.  Channels run in pairs, the two lanes side by side in the
+    same straight-line code: the two recurrences are independent, so the
+    processor overlaps them (and the compiler may pair their operations in
+    one vector register; IEEE arithmetic per lane is the same).  Each
+    channel's newest error stays in a register (it is the only operand on
+    the feedback loop's critical path); the older ones are read from a
+    linear window in the scratch (the last ``ntaps`` errors before the
+    chunk, then the chunk's), so that the taps are plain loads at fixed
+    distances; the window is copied into the circular history at the end.
+    The feedback sum starts from its first product ``h_1·e[n-1]`` instead
+    of ``0.0 + h_1·e[n-1]``: the two differ only in the sign of an all-zero
+    sum, which changes neither the word nor the stored error (see the
+    module notes).  Returns the history slot after the last frame.
     """
     nch = hist.shape[0]
     count = n_hi - n_lo
-    for a in range(0, nch, 2):
-        b = a + 1 if a + 1 < nch else a  # an odd last channel runs alone (lane b repeats nothing)
-        pair = b != a
-        # window: wa_base + ntaps + j holds e[n_lo + j]; below it the ntaps errors before the chunk
-        wa0 = a * DITHER_STRIDE + WINDOW_OFFSET
-        wb0 = b * DITHER_STRIDE + WINDOW_OFFSET
-        for k in range(1, ntaps + 1):
-            dith[_u(wa0 + ntaps - k)] = hist[a, (hpos0 - k) & HIST_MASK]
-            dith[_u(wb0 + ntaps - k)] = hist[b, (hpos0 - k) & HIST_MASK]
-        ea = hist[a, (hpos0 - 1) & HIST_MASK]
-        eb = hist[b, (hpos0 - 1) & HIST_MASK]
-        da0 = a * DITHER_STRIDE
-        db0 = b * DITHER_STRIDE
-        for j in range(count):
-            n = _u(n_lo + j)
-            wa = wa0 + ntaps + j  # this sample's slot in the window
-            xa = np.float64(x[n, a])
-            if not math.isfinite(xa):
-                counts[a, CNT_NONFINITE] += 1
-                xa = _replace_nonfinite(xa)
-                hist[a, :] = 0.0
-                for k in range(wa0, wa):
-                    dith[_u(k)] = 0.0
-                ea = 0.0
-            va = xa * gain
-            if tap:
-                vq[n, a] = va
-            va *= scale
-            ua = va
-            if ntaps > 0:
-                fb = fparams[FP_COEF0] * ea
-                for k in range(2, ntaps + 1):
-                    fb += fparams[FP_COEF0 + k - 1] * dith[_u(wa - k)]
-                ua -= fb
-            da = 0.0
-            if dithered:
-                da = dith[_u(da0 + j)]
-            qa = np.floor(ua + da + 0.5)
-            ea = qa - ua
-            if qa > q_hi or qa < q_lo:
-                counts[a, CNT_CLIPPED] += 1
-                qa, ea = _limit(qa, ua, q_lo, q_hi, fb_peak)
-            if abs(ea) < _DENORMAL_GUARD:
-                ea = 0.0
-            dith[_u(wa)] = ea
-            word_a = np.int64(qa) << shift
-            y[n, a] = word_a
-            if wtap:
-                yq[n, a] = word_a
-            if pair:
-                wb = wb0 + ntaps + j
-                xb = np.float64(x[n, b])
-                if not math.isfinite(xb):
-                    counts[b, CNT_NONFINITE] += 1
-                    xb = _replace_nonfinite(xb)
-                    hist[b, :] = 0.0
-                    for k in range(wb0, wb):
-                        dith[_u(k)] = 0.0
-                    eb = 0.0
-                vb = xb * gain
-                if tap:
-                    vq[n, b] = vb
-                vb *= scale
-                ub = vb
-                if ntaps > 0:
-                    fb = fparams[FP_COEF0] * eb
-                    for k in range(2, ntaps + 1):
-                        fb += fparams[FP_COEF0 + k - 1] * dith[_u(wb - k)]
-                    ub -= fb
-                db = 0.0
-                if dithered:
-                    db = dith[_u(db0 + j)]
-                qb = np.floor(ub + db + 0.5)
-                eb = qb - ub
-                if qb > q_hi or qb < q_lo:
-                    counts[b, CNT_CLIPPED] += 1
-                    qb, eb = _limit(qb, ub, q_lo, q_hi, fb_peak)
-                if abs(eb) < _DENORMAL_GUARD:
-                    eb = 0.0
-                dith[_u(wb)] = eb
-                word_b = np.int64(qb) << shift
-                y[n, b] = word_b
-                if wtap:
-                    yq[n, b] = word_b
-        # the chunk's errors into the circular history (a clear above already zeroed the rest)
-        for j in range(count):
-            slot = (hpos0 + j) & HIST_MASK
-            hist[a, slot] = dith[_u(wa0 + ntaps + j)]
-            hist[b, slot] = dith[_u(wb0 + ntaps + j)]
+    if nch >= 2:
+        _rest_pairs(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                    q_lo, q_hi, fb_peak, shift, tap, wtap)
+    if nch & 1:
+        _rest_single(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                     q_lo, q_hi, fb_peak, shift, tap, wtap, nch - 1)
     return (hpos0 + count) & HIST_MASK
 
 
@@ -583,14 +678,16 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
     dithered = kind != DITHER_NONE
     dith = rng_words.view(np.float64).reshape(-1)
 
+    # Many channels run in shorter chunks, so that a chunk's scratch stays in the first-level cache.
+    chunk_frames = CHUNK_FRAMES if nch <= 8 else max(CHUNK_FRAMES // 4, (CHUNK_FRAMES * 8) // nch)
     # The block runs in chunks of at most CHUNK_FRAMES frames: first the chunk's dither
     # for every channel, then its frames, through the lean loop when nothing moves
     # (constant gain, requantized words, no mute or auto-mute) and the general loop otherwise.
     n_lo = 0
     while n_lo < nframes:
-        n_hi = min(n_lo + CHUNK_FRAMES, nframes)
+        n_hi = min(n_lo + chunk_frames, nframes)
         if dithered:
-            _fill_dither(kind, seed, nch, frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
+            _fill_dither(kind, seed, nch, iparams[IP_CHANNEL0], frame0 + n_lo, n_hi - n_lo, dscale, rng_words, dith)
         at_rest_all = (ramp_left == 0 and eramp_left == 0 and mode == MON_REQUANTIZED and w0 == ramp_frames
                        and w1 == 0 and w2 == 0 and mute_pos == 0 and mute_target == 0 and not auto_mute)
         if at_rest_all:
@@ -668,7 +765,7 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
                     u -= fb
                 d = 0.0
                 if dithered:
-                    d = dith[c * DITHER_STRIDE + (n - n_lo)]
+                    d = dith[_scratch(c) + 2 * (n - n_lo)]
                 q = np.floor(u + d + 0.5)
                 e = q - u
                 if q > q_hi or q < q_lo:

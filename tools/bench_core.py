@@ -444,6 +444,54 @@ def pure_io(in_path, out_path, blocksize=65536):
             dst.write(words[:n])
 
 
+def pipe_command():
+    """The ``rtstage pipe`` command line under test (same settings as :func:`render_command`)."""
+    return [
+        sys.executable, "-m", "rtstage", "pipe", "--samplerate", str(BENCH_SAMPLERATE), "--channels", str(BENCH_CHANNELS),
+        "--in-format", "s24le", "--out-format", "s16le", "--bits", str(BENCH_BITS), "--dither", BENCH_DITHER,
+        "--shaper", BENCH_SHAPER, "--seed", str(BENCH_SEED),
+    ]  # fmt: skip
+
+
+def write_raw_s24(wav_path, raw_path, chunk_frames=1 << 20):
+    """The WAV's samples as raw s24le (once; reused while it exists): the pipe's input, the same material."""
+    import soundfile as sf
+
+    with sf.SoundFile(wav_path) as src:
+        want = src.frames * src.channels * 3
+        if os.path.exists(raw_path) and os.path.getsize(raw_path) == want:
+            return
+        with sf.SoundFile(raw_path + ".part", "w", src.samplerate, src.channels, subtype="PCM_24", format="RAW",
+                          endian="LITTLE") as dst:  # fmt: skip
+            while True:
+                block = src.read(chunk_frames, dtype="int32")
+                if block.shape[0] == 0:
+                    break
+                dst.write(block)
+    os.replace(raw_path + ".part", raw_path)
+
+
+def run_pipe_subprocess(raw_path, out_path, env):
+    with open(raw_path, "rb") as fin, open(out_path, "wb") as fout:
+        proc = subprocess.run(pipe_command(), cwd=REPO_DIR, env=env, stdin=fin, stdout=fout, stderr=subprocess.PIPE,
+                              text=True)  # fmt: skip
+    if proc.returncode != 0:
+        raise RuntimeError(f"rtstage pipe exited with {proc.returncode}: {proc.stderr.strip()[-400:]}")
+
+
+def peak_rss_kb(cmd, env):
+    """Peak resident memory (kB) of a command, from the kernel's accounting of the waited-for child."""
+    import resource
+
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    proc = subprocess.run(cmd, cwd=REPO_DIR, env=env, capture_output=True, text=True)
+    if proc.returncode != 0:
+        raise RuntimeError(f"{cmd[3]} exited with {proc.returncode}: {proc.stderr.strip()[-400:]}")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    # ru_maxrss of RUSAGE_CHILDREN is the largest of all children so far: measure the smallest file first
+    return max(after, before) if after > before else after
+
+
 def run_render_subprocess(in_path, out_path, env):
     proc = subprocess.run(render_command(in_path, out_path), cwd=REPO_DIR, env=env, capture_output=True, text=True)
     if proc.returncode != 0:
@@ -473,19 +521,24 @@ def bench_render(minutes, reps):
     out_io = os.path.join(BUILD_DIR, "out_pure_io.wav")
     out_cli = os.path.join(BUILD_DIR, "out_render_cli.wav")
     out_lib = os.path.join(BUILD_DIR, "out_render_lib.wav")
+    raw_in = os.path.join(BUILD_DIR, f"programme_{minutes:g}min_48k_s24le.raw")
+    out_pipe = os.path.join(BUILD_DIR, "out_pipe.raw")
     write_programme_wav(in_path, seconds)
+    write_raw_s24(in_path, raw_in)
     env = subprocess_env()
     log(f"render: {minutes:g} min stereo 48 kHz, best of {reps} (interleaved)")
     # one untimed run of each warms the page cache and the numba cache
     pure_io(in_path, out_io)
     run_render_subprocess(in_path, out_cli, env)
     render_in_process(in_path, out_lib)
-    times = {"io": [], "cli": [], "lib": []}
+    run_pipe_subprocess(raw_in, out_pipe, env)
+    times = {"io": [], "cli": [], "lib": [], "pipe": []}
     for _ in range(reps):
         for key, fn in (
             ("io", lambda: pure_io(in_path, out_io)),
             ("cli", lambda: run_render_subprocess(in_path, out_cli, env)),
             ("lib", lambda: render_in_process(in_path, out_lib)),
+            ("pipe", lambda: run_pipe_subprocess(raw_in, out_pipe, env)),
         ):
             t0 = time.perf_counter()
             fn()
@@ -494,6 +547,11 @@ def bench_render(minutes, reps):
     with sf.SoundFile(out_cli) as f:
         out_subtype = f.subtype
     same_words = _files_equal(out_cli, out_lib)
+    with sf.SoundFile(out_cli) as f:
+        cli_words = f.read(dtype="int16")
+    pipe_words = np.fromfile(out_pipe, dtype="<i2").reshape(-1, BENCH_CHANNELS)
+    pipe_same = pipe_words.shape == cli_words.shape and np.array_equal(pipe_words, cli_words)
+    del cli_words, pipe_words
     result = {
         "input": in_path,
         "input_bytes": os.path.getsize(in_path),
@@ -504,10 +562,14 @@ def bench_render(minutes, reps):
         "io": summary(times["io"]),
         "cli": summary(times["cli"]),
         "lib": summary(times["lib"]),
+        "pipe": summary(times["pipe"]),
+        "pipe_and_render_identical": pipe_same,
     }
     result["cli_ratio"] = result["cli"]["best_s"] / result["io"]["best_s"]
     result["lib_ratio"] = result["lib"]["best_s"] / result["io"]["best_s"]
-    for p in (out_io, out_cli, out_lib):
+    # throughput ratio: render time / pipe time (>= 1 means the pipe is at least as fast)
+    result["pipe_throughput_ratio"] = result["cli"]["best_s"] / result["pipe"]["best_s"] if pipe_same else 0.0
+    for p in (out_io, out_cli, out_lib, out_pipe):
         os.remove(p)
     return result
 
@@ -688,6 +750,10 @@ def print_table(results, out=sys.stdout):
         w(f"   {'pure I/O (soundfile read+write)':34s} {_t(rr['io'])}\n")
         w(f"   {'rtstage render (subprocess)':34s} {_t(rr['cli'])}  -> {rr['cli_ratio']:.2f}x I/O\n")
         w(f"   {'render_file() (in process)':34s} {_t(rr['lib'])}  -> {rr['lib_ratio']:.2f}x I/O\n")
+        if rr["pipe_and_render_identical"]:
+            w(f"   {'rtstage pipe, s24le -> s16le':34s} {_t(rr['pipe'])}  -> {rr['pipe_throughput_ratio']:.2f}x render's throughput\n")
+        else:
+            w(f"   {'rtstage pipe, s24le -> s16le':34s} DIFFERENT words from the render: no speed printed\n")
         w(f"   output sizes (bytes): {rr['output_bytes']}; subprocess and in-process outputs identical: "
           f"{rr['cli_and_lib_identical']}\n\n")  # fmt: skip
     wr = results.get("warm")

@@ -362,13 +362,16 @@ def meter_ring_write(ctl, ring_x, ring_w, vq, words, nframes):
         return
     nch = ring_x.shape[1]
     slot = head % cap
-    for n in range(nframes):
+    # At most two runs of whole rows (before and after the ring's end), each a plain copy loop.
+    first = min(nframes, cap - slot)
+    for n in range(first):
         for c in range(nch):
-            ring_x[slot, c] = vq[n, c]
-            ring_w[slot, c] = words[n, c]
-        slot += 1
-        if slot == cap:
-            slot = 0
+            ring_x[slot + n, c] = vq[n, c]
+            ring_w[slot + n, c] = words[n, c]
+    for n in range(first, nframes):
+        for c in range(nch):
+            ring_x[n - first, c] = vq[n, c]
+            ring_w[n - first, c] = words[n, c]
     fence()
     ctl[C_MRING_HEAD] = head + nframes
 
