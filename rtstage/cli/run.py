@@ -80,13 +80,13 @@ def run_command(args):
 
     in_journal = use_journal()
     hold_reload_signal()
+    feed = load_run_feed(args)
     if args.source is None and args.loop:
         raise RtstageError("--loop needs a --source file")
     if args.blocksize < 1 or args.blocksize > 1 << 16:
         raise RtstageError(f"blocksize must be between 1 and 65536 frames, got {args.blocksize}")
     if not 0 <= args.control_port < 65536:
         raise RtstageError(f"--control-port must be 0 (off) or 1..65535, got {args.control_port}")
-    feed = load_run_feed(args)
     settings = settings_with_feed(settings_from_args(args), feed)
     args.output_plan = check_run_outputs(args)
     if is_deviceless(args):
