@@ -222,6 +222,8 @@ class Case:
     close_stdout: bool = False
     lines: int = 1
     """Lines expected on stderr; 0 for a quiet end, -1 when a successful run may log more (then ``expect`` is searched)."""
+    contents: dict = field(default_factory=dict)
+    """Extra files {name: bytes} written into the case folder (generated cases)."""
 
 
 @dataclass
@@ -285,6 +287,9 @@ def run_case(case, base):
     """Run one case in a fresh folder under ``base``; returns a :class:`Result`."""
     folder = tempfile.mkdtemp(prefix=case.name[:40] + "-", dir=base)
     build(folder, case.files)
+    for name, data in case.contents.items():
+        with open(os.path.join(folder, name), "wb") as f:
+            f.write(data)
     mnt = os.path.join(base, "mnt-" + os.path.basename(folder)) if case.mount else None
     if mnt:
         _mount(mnt, case.mount)
@@ -352,6 +357,20 @@ def run_all(cases, base, workers=None):
     with ThreadPoolExecutor(max_workers=workers) as pool:
         results = list(pool.map(lambda c: _guarded(c, base), cases))
     return {r.case.name: r for r in results}
+
+
+def check_either(result, accepted):
+    """For generated cases whose status depends on the drawn value: either refused (status 2, one line,
+    nothing changed) or done (status 0, only ``accepted`` outputs changed); never a traceback."""
+    err_lines = [line for line in result.stderr.splitlines() if line.strip()]
+    where = f"{result.case.name} {result.case.argv}: status {result.status}, stderr {result.stderr!r}"
+    assert "Traceback" not in result.stderr, where
+    assert result.status in (0, 2), where
+    if result.status == 2:
+        assert len(err_lines) == 1 and err_lines[0].startswith("rtstage:"), where
+        assert not result.changed, f"{where}: changed {sorted(result.changed)}"
+    else:
+        assert result.changed <= set(accepted), f"{where}: changed {sorted(result.changed)}"
 
 
 def check(result):

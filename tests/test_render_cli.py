@@ -150,7 +150,7 @@ def test_error_paths(tmp_path, programme, capsys):
     assert "cannot tell the output format" in run_error(["render", src, str(tmp_path / "out.xyz")], capsys)
     assert "cannot hold subtype" in run_error(["render", src, str(tmp_path / "out.flac"), "--subtype", "PCM_32"], capsys)
     assert "blocksize" in run_error(["render", src, out, "--blocksize", "0"], capsys)
-    assert "refusing to overwrite the input" in run_error(["render", src, src, "--force"], capsys)
+    assert "is the input" in run_error(["render", src, src, "--overwrite"], capsys)
     assert not os.path.exists(out) and not leftovers(tmp_path)
     # Out-of-range stream shapes.
     slow = str(tmp_path / "slow.wav")
@@ -159,11 +159,11 @@ def test_error_paths(tmp_path, programme, capsys):
     wide = str(tmp_path / "wide.wav")
     sf.write(wide, np.zeros((100, 65)), 48000, subtype="PCM_16")
     assert "65 channels" in run_error(["render", wide, out], capsys)
-    # An existing output is refused without --force and kept untouched.
+    # An existing output is refused without --overwrite and kept untouched.
     open(out, "wb").write(b"keep")
     assert "exists" in run_error(["render", src, out], capsys)
     assert open(out, "rb").read() == b"keep"
-    assert main(["render", src, out, "--force", "--seed", "1"]) == 0
+    assert main(["render", src, out, "--overwrite", "--seed", "1"]) == 0
     assert sf.info(out).frames == x.shape[0]
     assert not leftovers(tmp_path)
 

@@ -80,6 +80,7 @@ def run_command(args):
 
     in_journal = use_journal()
     hold_reload_signal()
+    feed = load_run_feed(args)
     if args.source is None and args.loop:
         raise RtstageError("--loop needs a --source file")
     feed = load_run_feed(args)  # first: it resolves the options a feed may set (until then they are unset)
