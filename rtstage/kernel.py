@@ -218,6 +218,20 @@ _LOW32 = np.uint64(0xFFFFFFFF)
 _DENORMAL_GUARD = 1e-30
 
 
+def container_width(container):
+    """Bits of the integer the words of a ``container``-bit container are stored in: 16 for 16, else 32.
+
+    Words of a 24-bit container (and of a 32-bit one) sit left-justified in
+    int32, so ``out_shift = container_width(container) - bits``.
+    """
+    return 16 if container == 16 else 32
+
+
+def word_dtype(container):
+    """numpy dtype of the output words ``y`` for ``container`` (a width, 16 or 32, gives the same)."""
+    return np.int16 if container_width(container) == 16 else np.int32
+
+
 class KernelState:
     """Preallocated parameter and state arrays for ``nchannels`` channels.
 

@@ -57,9 +57,8 @@ import time
 import numpy as np
 
 from .. import params
-from ..engine import container_bits
 from ..log import log
-from ..errors import RtstageError
+from ..threads import StoppableThread
 
 
 ERROR_GAIN_CAUTION = (
@@ -75,6 +74,8 @@ class ControlTarget:
 
     _cautioned = False
     _cautions = None
+    core = None
+    """The :class:`rtstage.engine.Engine` behind the target (settings, container, counters), if any."""
 
     def note_caution(self, values, ticket):
         """Log the hearing-safety caution the first time ``values`` raise ``error_gain_db`` above 0 dB.
@@ -100,7 +101,10 @@ class ControlTarget:
         raise NotImplementedError
 
     def check(self, values):
-        """Raise :class:`RtstageError` for valid changes this target cannot take."""
+        """Raise :class:`RtstageError` for valid changes this target cannot take (a word that does not fit)."""
+        bits = values.get("bits")
+        if bits is not None and self.core is not None:
+            self.core.check_bits(bits)
 
     def submit(self, values):
         """Queue validated changes atomically for the next block boundary, without waiting; returns a ticket."""
@@ -153,7 +157,7 @@ class EngineTarget(ControlTarget):
     """
 
     def __init__(self, engine, blocksize=256, automation_log=None, apply_timeout_s=0.5):
-        self.engine = engine
+        self.engine = self.core = engine
         self.blocksize = int(blocksize)
         self.automation_log = automation_log
         self.apply_timeout_s = float(apply_timeout_s)
@@ -178,11 +182,6 @@ class EngineTarget(ControlTarget):
     def get(self):
         with self._lock:
             return dict(self._values)
-
-    def check(self, values):
-        bits = values.get("bits")
-        if bits is not None and container_bits(bits) > self.engine.container:
-            raise RtstageError(f"bits={bits} does not fit this engine's {self.engine.container}-bit output")
 
     def submit(self, values):
         self.check(values)
@@ -266,7 +265,7 @@ class EngineTarget(ControlTarget):
 
     def _meter_frame(self, y):
         nch = self.engine.nchannels
-        full_scale = float(2 ** (self.engine.container - 1)) if self.engine.container == 16 else float(2**31)
+        full_scale = self.engine.full_scale
         if y is None or len(y) == 0:
             peak = [None] * nch
             rms = [None] * nch
@@ -324,27 +323,24 @@ class BlockDriver:
         self.source = source or (lambda f, n: sine_block(f, n, eng.nchannels, eng.samplerate))
         self.tap = [] if tap else None
         self.block_times_s = []
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="rtstage-block-driver", daemon=True)
+        self._worker = StoppableThread(self._run, "rtstage-block-driver")
         self.error = None
 
     def start(self):
         """Start the thread; the target reports ``running`` from now on."""
         self.target.running = True
-        self._thread.start()
+        self._worker.start()
         return self
 
     def stop(self):
         """Stop the thread and wait for it."""
-        self._stop.set()
-        if self._thread.is_alive():
-            self._thread.join()
+        self._worker.stop()
         self.target.running = False
 
     def wait(self, timeout_s=None):
         """Wait until ``nblocks`` are done; returns True when the thread has ended."""
-        self._thread.join(timeout_s)
-        return not self._thread.is_alive()
+        self._worker.join(timeout_s)
+        return not self._worker.alive
 
     def __enter__(self):
         return self.start()
@@ -360,7 +356,7 @@ class BlockDriver:
         t_next = time.monotonic()
         count = 0
         try:
-            while not self._stop.is_set() and (self.nblocks is None or count < self.nblocks):
+            while not self._worker.stopping and (self.nblocks is None or count < self.nblocks):
                 if self.realtime:
                     delay = t_next - time.monotonic()
                     if delay > 0:

@@ -44,12 +44,9 @@ import sys
 import tempfile
 import threading
 import time
-from dataclasses import replace
-
 import numpy as np
 
-from .. import kernel as K
-from ..engine import container_bits, encode_params
+from ..engine import Engine
 from ..log import log
 from ..errors import RtstageError
 from . import shared as S
@@ -129,6 +126,8 @@ class LiveEngine:
         self.settle_s = float(settle_s)
         self.stall_s = stall_s
         self.block = None
+        self.engine = None
+        """The :class:`~rtstage.engine.Engine` (from :meth:`prepare`): settings, container, counters."""
         self.stream = None
         self.tap = None
         self.restarts = 0
@@ -171,8 +170,11 @@ class LiveEngine:
         self.channels = int(self.channels or DEFAULT_CHANNELS)
         if src is not None and src.generated:
             check_source(src, self.samplerate)
-        self.settings = self.settings.resolved()
-        self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
+        # The one engine object model: settings resolved, validated and encoded here, once; its state moves
+        # into the shared block below, and later changes go out through the seqlock (set_settings).
+        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
+        self.settings = self.engine.settings
+        self.out_bits = self.engine.width
         ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path else 0
         src_frames = 0 if data is None else data.shape[0]
         meter_frames = max(int(self.meter_ring_s * self.samplerate), 8 * self.blocksize) if self.meter_ring_s > 0 else 0
@@ -189,11 +191,7 @@ class LiveEngine:
         if data is not None:
             self.block.source[:] = data
         self._configure(self.block)
-        kst = self.block.kernel
-        encode_params(self.settings, self.samplerate, self.out_shift, kst.iparams, kst.fparams)
-        kst.reset(0)
-        self._new_ip = np.zeros(K.IP_LEN, dtype=np.int64)
-        self._new_fp = np.zeros(K.FP_LEN, dtype=np.float64)
+        self.engine.use_memory(self.block.kernel, publish=self._publish_params)
         self._warm()
         if self.tap_path:
             info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
@@ -205,7 +203,11 @@ class LiveEngine:
     @property
     def out_shift(self):
         """Left shift from the word to its container."""
-        return (16 if self.out_bits == 16 else 32) - self.settings.bits
+        return self.engine.out_shift
+
+    def _publish_params(self, iparams, fparams):
+        """The engine's publish hook: the seqlock write into the shared block; returns the sequence number."""
+        return S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, iparams, fparams)
 
     def _configure(self, block):
         ctl = block.ctl
@@ -254,7 +256,8 @@ class LiveEngine:
 
         build_callback()
         scratch = S.SharedBlock(self.channels, self.out_bits, self.blocksize, 4 * self.blocksize)
-        S.publish_params(scratch.ctl, scratch.pending_ip, scratch.pending_fp, self._new_ip, self._new_fp)
+        S.publish_params(scratch.ctl, scratch.pending_ip, scratch.pending_fp, np.zeros_like(scratch.scratch_ip),
+                         np.zeros_like(scratch.scratch_fp))
         S.applied(scratch.ctl)
         S.ring_read(scratch.ctl, scratch.ring, np.zeros((8, self.channels), dtype=scratch.out_dtype))
 
@@ -380,7 +383,7 @@ class LiveEngine:
                 log(f"retry {attempt}: {exc}")
                 continue
             gap_s = time.monotonic() - lost_at
-            frame = int(self.block.kernel.clock[K.CLK_FRAME])
+            frame = self.engine.frame
             gap = {"tap_frame": self.block.counter(S.C_RING_HEAD), "engine_frame": frame, "gap_s": round(gap_s, 6),
                    "reason": reason}
             self.gaps.append(gap)
@@ -488,14 +491,14 @@ class LiveEngine:
         int
             Sequence number to pass to :meth:`wait_applied`.
         """
-        settings = replace(settings, seed=self.settings.seed).resolved()
-        if (16 if container_bits(settings.bits) == 16 else 32) != self.out_bits:
-            raise RtstageError(f"bits={settings.bits} does not fit this stream's {self.out_bits}-bit output")
-        out_shift = (16 if self.out_bits == 16 else 32) - settings.bits
-        encode_params(settings, self.samplerate, out_shift, self._new_ip, self._new_fp)
-        seq = S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, self._new_ip, self._new_fp)
-        self.settings = settings
-        return int(seq)
+        seq = self.engine.apply(settings)
+        self.settings = self.engine.settings
+        return seq
+
+    def last_applied(self):
+        """(sequence number, sample index) of the settings the callback took last."""
+        seq, frame = S.applied(self.block.ctl)
+        return int(seq), int(frame)
 
     def wait_applied(self, seq, timeout_s=2.0):
         """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
@@ -533,7 +536,7 @@ class LiveEngine:
             "seed": getattr(self.settings, "seed", None),
             "blocks": b.counter(S.C_CALLBACKS) if b else 0,
             "frames": b.counter(S.C_FRAMES) if b else 0,
-            "engine_frame": int(b.kernel.clock[K.CLK_FRAME]) if b else 0,
+            "engine_frame": self.engine.frame if b else 0,
             "xruns": flags,
             "xruns_after_settle": after,
             "settle_s": self.settle_s,
@@ -546,10 +549,10 @@ class LiveEngine:
             "source_loops": b.counter(S.C_LOOPS) if b else 0,
             "tap_frames": b.counter(S.C_RING_HEAD) if b else 0,
             "tap_dropped_frames": b.counter(S.C_RING_DROPPED) if b else 0,
-            "clipped": b.kernel.counts[:, K.CNT_CLIPPED].tolist() if b else [],
-            "nonfinite": b.kernel.counts[:, K.CNT_NONFINITE].tolist() if b else [],
-        "auto_muted": (b.kernel.counts[:, K.CNT_AM_MUTED] != 0).tolist() if b else [],
-        "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
+            "clipped": self.engine.clipped.tolist() if b else [],
+            "nonfinite": self.engine.nonfinite.tolist() if b else [],
+            "auto_muted": self.engine.auto_muted.tolist() if b else [],
+            "auto_muted_frames": self.engine.auto_muted_frames.tolist() if b else [],
             "settings_applied": list(self.applied_log),
         }
         return result
@@ -567,14 +570,14 @@ class LiveEngine:
         # them in the meter thread's first update would hold the GIL for seconds while audio runs,
         # starving the control and MIDI threads.
         s = self.settings
-        width = 16 if self.block.out_dtype == np.int16 else 32
         warm = MeterBank(self.channels, self.samplerate, s.bits, shaper.coefs, s.dither, s.dither_scale,
-                         out_shift=width - s.bits, shaper_id=shaper.id)
+                         out_shift=self.engine.out_shift, shaper_id=shaper.id)
         frames = 4096
         warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
         warm.report()
         self._meter_shapers = {tuple(shaper.coefs): shaper.id}
-        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name).start()
+        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name,
+                                        engine=self.engine).start()
 
     def _meter_shaper_name(self, coefs):
         shaper = self.settings.shaper
