@@ -18,6 +18,16 @@ any of these threads.
 import threading
 
 
+class Startable:
+    """Mixin for an owner of a thread with ``start()`` (returning self) and ``stop()``: a context manager."""
+
+    def __enter__(self):
+        return self.start()
+
+    def __exit__(self, *exc):
+        self.stop()
+
+
 class StoppableThread:
     """A daemon thread running ``target()`` with a stop event.
 

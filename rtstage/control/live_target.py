@@ -49,7 +49,7 @@ import time
 from .. import params
 from ..errors import RtstageError
 from ..log import log
-from ..threads import StoppableThread
+from ..threads import Startable, StoppableThread
 from .target import ControlTarget
 
 POLL_S = 0.0005
@@ -60,7 +60,7 @@ def _dbfs_none(nchannels):
     return [None] * int(nchannels)
 
 
-class LiveTarget(ControlTarget):
+class LiveTarget(ControlTarget, Startable):
     """Control target over a :class:`~rtstage.live.supervisor.LiveEngine`.
 
     Parameters
@@ -128,12 +128,6 @@ class LiveTarget(ControlTarget):
         with self._cond:
             self._cond.notify_all()
 
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
-
     # -- ControlTarget ------------------------------------------------------------------------
     def get(self):
         with self._lock:
@@ -152,14 +146,8 @@ class LiveTarget(ControlTarget):
         self._wake.set()
         return ticket
 
-    def wait(self, ticket, timeout_s=None):
-        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
-        with self._cond:
-            self._cond.wait_for(lambda: self._applied_ticket >= ticket or self._worker.stopping, timeout=timeout_s)
-            for t in range(ticket, self._applied_ticket + 1):
-                if t in self._applied_frame:
-                    return self._applied_frame[t]
-            return None
+    def _stopping(self):
+        return self._worker.stopping
 
     def status(self):
         live = self.engine.status()
@@ -258,10 +246,4 @@ class LiveTarget(ControlTarget):
             if self.automation_log is not None:
                 self.automation_log.write(frame, values)
         with self._cond:
-            for t in range(self._applied_ticket + 1, ticket + 1):
-                self._applied_frame[t] = frame
-            if len(self._applied_frame) > 1024:
-                for t in sorted(self._applied_frame)[:-512]:
-                    del self._applied_frame[t]
-            self._applied_ticket = max(self._applied_ticket, ticket)
-            self._cond.notify_all()
+            self._record_applied(ticket, frame)

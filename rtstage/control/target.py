@@ -58,7 +58,7 @@ import numpy as np
 
 from .. import params
 from ..log import log
-from ..threads import StoppableThread
+from ..threads import Startable, StoppableThread
 
 
 ERROR_GAIN_CAUTION = (
@@ -111,8 +111,32 @@ class ControlTarget:
         raise NotImplementedError
 
     def wait(self, ticket, timeout_s=None):
-        """Wait (at most ``timeout_s``) until the changes of ``ticket`` took effect; their sample index, or None."""
-        raise NotImplementedError
+        """Wait (at most ``timeout_s``) until the changes of ``ticket`` took effect; their sample index, or None.
+
+        Provided for targets that keep ``_cond`` (a Condition), ``_applied_ticket``, ``_applied_frame`` and
+        ``apply_timeout_s`` and call :meth:`_record_applied` when changes take effect.
+        """
+        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
+        with self._cond:
+            self._cond.wait_for(lambda: self._applied_ticket >= ticket or self._stopping(), timeout=timeout_s)
+            for t in range(ticket, self._applied_ticket + 1):
+                if t in self._applied_frame:
+                    return self._applied_frame[t]
+            return None
+
+    def _stopping(self):
+        """True when :meth:`wait` should give up at once (the target is stopping)."""
+        return False
+
+    def _record_applied(self, ticket, frame):
+        """With ``_cond`` held: the changes up to ``ticket`` took effect at ``frame`` (None: not applied); wakes waiters."""
+        for t in range(self._applied_ticket + 1, ticket + 1):
+            self._applied_frame[t] = frame
+        if len(self._applied_frame) > 1024:
+            for t in sorted(self._applied_frame)[:-512]:
+                del self._applied_frame[t]
+        self._applied_ticket = max(self._applied_ticket, ticket)
+        self._cond.notify_all()
 
     def set(self, values):
         """Apply validated changes atomically; return the sample index they took effect at, or None."""
@@ -170,7 +194,7 @@ class EngineTarget(ControlTarget):
         self._start_seed = engine.settings.seed
         self._pending = {}
         self._seq = 0
-        self._applied_seq = 0
+        self._applied_ticket = 0
         self._applied_frame = {}
         self._lock = threading.Lock()
         self._cond = threading.Condition(self._lock)
@@ -196,15 +220,6 @@ class EngineTarget(ControlTarget):
             with self._engine_lock:
                 self._apply_pending()
         return seq
-
-    def wait(self, ticket, timeout_s=None):
-        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
-        with self._cond:
-            self._cond.wait_for(lambda: self._applied_seq >= ticket, timeout=timeout_s)
-            for s in range(ticket, self._applied_seq + 1):
-                if s in self._applied_frame:
-                    return self._applied_frame[s]
-            return None
 
     def status(self):
         with self._lock:
@@ -240,16 +255,11 @@ class EngineTarget(ControlTarget):
             self.applied.append((frame, pending, time.monotonic()))
             if self.automation_log is not None:
                 self.automation_log.write(frame, pending)
-            with self._cond:
-                for s in range(self._applied_seq + 1, seq + 1):
-                    self._applied_frame[s] = frame
-                if len(self._applied_frame) > 1024:
-                    for s in sorted(self._applied_frame)[:-512]:
-                        del self._applied_frame[s]
+        else:
+            frame = None
         with self._cond:
-            if seq > self._applied_seq:
-                self._applied_seq = seq
-                self._cond.notify_all()
+            if seq > self._applied_ticket:
+                self._record_applied(seq, frame)
 
     def process(self, x, out=None):
         """Apply pending changes, then requantize block ``x``; returns the words."""
@@ -293,7 +303,7 @@ def sine_block(frame, nframes, nchannels, samplerate, level_dbfs=-20.0, frequenc
     return (10.0 ** (level_dbfs / 20.0)) * np.sin(phase)
 
 
-class BlockDriver:
+class BlockDriver(Startable):
     """A thread that runs an :class:`EngineTarget` in real time, as a stand-in for the live engine.
 
     Parameters
@@ -341,12 +351,6 @@ class BlockDriver:
         """Wait until ``nblocks`` are done; returns True when the thread has ended."""
         self._worker.join(timeout_s)
         return not self._worker.alive
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
 
     def _run(self):
         target = self.target

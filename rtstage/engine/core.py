@@ -1,22 +1,9 @@
-"""The engine: validated settings, prepared state, block processing.
+"""The engine object model: settings -> validated, encoded kernel parameters; state and counters owned.
 
-Three phases, as in any real-time processor: construct an :class:`Engine`
-for a channel count and sample rate (everything is sized there; the kernel is
-compiled, or loaded from numba's cache, at the first block: the offline
-drivers do not need it earlier, and the live engine warms its own compiled
-callback before the stream opens), call :meth:`Engine.process` on blocks of any size
-(zero included), and read its counters.  The offline renderer, the pipe and
-the live callback all drive the same compiled :func:`rtstage.kernel.process_block`.
-
-Examples
---------
->>> import numpy as np
->>> from rtstage import Engine, EngineSettings
->>> engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=7),
-...                 nchannels=2, samplerate=44100)
->>> words = engine.process(np.zeros((512, 2)))
->>> words.dtype, words.shape
-(dtype('int16'), (512, 2))
+The container rule (:func:`check_word_fits`), the encoding
+(:func:`encode_params`) and the reading of the kernel's counters
+(:class:`StateView`) are written here once, for the offline drivers and the
+live engine alike; see :mod:`rtstage.engine` for the three phases.
 """
 
 from dataclasses import replace

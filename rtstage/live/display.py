@@ -25,7 +25,7 @@ import math
 import sys
 import time
 
-from ..threads import StoppableThread
+from ..threads import Startable, StoppableThread
 
 BAR_WIDTH = 40
 """Characters of a level bar."""
@@ -175,7 +175,7 @@ def status_line(snap):
     return "rtstage: meters " + " | ".join(parts)
 
 
-class LiveDisplay:
+class LiveDisplay(Startable):
     """Show meter snapshots on stderr until stopped (see the module notes).
 
     Parameters
@@ -220,12 +220,6 @@ class LiveDisplay:
     def stop(self):
         """Stop drawing; the terminal keeps the last panel."""
         self._worker.stop()
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
 
     def _snapshot(self):
         try:

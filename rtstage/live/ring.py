@@ -9,11 +9,11 @@ once, after a fence, so neither ever waits for the other:
 
 * producer (the audio callback): :func:`reserve` checks that a whole block
   fits (else it adds the block to ``dropped`` and the block is skipped),
-  the block is copied in with :func:`copy_in`, and :func:`publish` advances
+  the block is copied in with :func:`copy_in`, and :func:`advance` moves
   the head after a fence;
 * consumer (a housekeeping thread): :func:`available` reads the head, then the
-  tail, the frames are copied out with :func:`copy_out`, and :func:`release`
-  advances the tail after a fence.
+  tail, the frames are copied out with :func:`copy_out`, and :func:`advance`
+  moves the tail after a fence.
 
 The tap ring and the meter ring of :mod:`rtstage.live.shared` are two rings of
 this kind.  Every function here is compiled with ``error_model="numpy"``, so
@@ -33,8 +33,16 @@ from ._ptr import fence
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def reserve(ctl, head_at, tail_at, dropped_at, cap, nframes):
-    """Producer: the head (frames written so far) if ``nframes`` fit whole, else -1 after counting them dropped."""
+def reserve(ctl, on_at, head_at, tail_at, dropped_at, cap_at, nframes):
+    """Producer: the head (frames written so far) if ``nframes`` frames fit whole, else -1.
+
+    -1 also when the ring is off (``ctl[on_at] == 0``) or ``nframes`` is 0;
+    frames that do not fit are added to ``ctl[dropped_at]``.  The capacity
+    is ``ctl[cap_at]``.
+    """
+    if ctl[on_at] == 0 or nframes == 0:
+        return -1
+    cap = ctl[cap_at]
     head = ctl[head_at]
     fence()
     tail = ctl[tail_at]
@@ -45,10 +53,11 @@ def reserve(ctl, head_at, tail_at, dropped_at, cap, nframes):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def publish(ctl, head_at, head, nframes):
-    """Producer: make ``nframes`` frames written from ``head`` visible to the consumer."""
+def advance(ctl, counter_at, start, n):
+    """After a fence, move a counter from ``start`` by ``n`` frames: the producer publishes frames it wrote
+    (the head), the consumer hands back frames it read (the tail)."""
     fence()
-    ctl[head_at] = head + nframes
+    ctl[counter_at] = start + n
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
@@ -58,13 +67,6 @@ def available(ctl, head_at, tail_at, limit):
     fence()
     tail = ctl[tail_at]
     return tail, min(head - tail, limit)
-
-
-@njit(nogil=True, cache=True, error_model="numpy")
-def release(ctl, tail_at, tail, n):
-    """Consumer: hand ``n`` frames read from ``tail`` back to the producer."""
-    fence()
-    ctl[tail_at] = tail + n
 
 
 @njit(nogil=True, cache=True, error_model="numpy")

@@ -307,13 +307,10 @@ def take_params(ctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fp
 @njit(nogil=True, cache=True, error_model="numpy")
 def ring_write(ctl, ring, words, nframes):
     """Producer (callback): append ``nframes`` frames of ``words`` to the tap ring whole, or count them dropped."""
-    if ctl[C_TAP_ON] == 0 or nframes == 0:
-        return
-    head = R.reserve(ctl, C_RING_HEAD, C_RING_TAIL, C_RING_DROPPED, ctl[C_RING_FRAMES], nframes)
-    if head < 0:
-        return
-    R.copy_in(ring, head, words, nframes)
-    R.publish(ctl, C_RING_HEAD, head, nframes)
+    head = R.reserve(ctl, C_TAP_ON, C_RING_HEAD, C_RING_TAIL, C_RING_DROPPED, C_RING_FRAMES, nframes)
+    if head >= 0:
+        R.copy_in(ring, head, words, nframes)
+        R.advance(ctl, C_RING_HEAD, head, nframes)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
@@ -321,21 +318,18 @@ def ring_read(ctl, ring, out):
     """Consumer (tap writer): copy up to ``out.shape[0]`` frames of the tap ring into ``out``; returns the count."""
     tail, n = R.available(ctl, C_RING_HEAD, C_RING_TAIL, out.shape[0])
     R.copy_out(ring, tail, out, 0, n)
-    R.release(ctl, C_RING_TAIL, tail, n)
+    R.advance(ctl, C_RING_TAIL, tail, n)
     return n
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
 def meter_ring_write(ctl, ring_x, ring_w, vq, words, nframes):
     """Producer (callback): append ``nframes`` frames of ``vq`` and ``words`` whole, or count them dropped."""
-    if ctl[C_METER_ON] == 0 or nframes == 0:
-        return
-    head = R.reserve(ctl, C_MRING_HEAD, C_MRING_TAIL, C_MRING_DROPPED, ctl[C_MRING_FRAMES], nframes)
-    if head < 0:
-        return
-    R.copy_in(ring_x, head, vq, nframes)
-    R.copy_in(ring_w, head, words, nframes)
-    R.publish(ctl, C_MRING_HEAD, head, nframes)
+    head = R.reserve(ctl, C_METER_ON, C_MRING_HEAD, C_MRING_TAIL, C_MRING_DROPPED, C_MRING_FRAMES, nframes)
+    if head >= 0:
+        R.copy_in(ring_x, head, vq, nframes)
+        R.copy_in(ring_w, head, words, nframes)
+        R.advance(ctl, C_MRING_HEAD, head, nframes)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
@@ -347,7 +341,7 @@ def meter_ring_read(ctl, ring_x, ring_w, out_x, out_w, start):
     tail, n = R.available(ctl, C_MRING_HEAD, C_MRING_TAIL, out_x.shape[0] - start)
     R.copy_out(ring_x, tail, out_x, start, n)
     R.copy_out(ring_w, tail, out_w, start, n)
-    R.release(ctl, C_MRING_TAIL, tail, n)
+    R.advance(ctl, C_MRING_TAIL, tail, n)
     return n
 
 

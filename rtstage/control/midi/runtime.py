@@ -9,14 +9,14 @@ import time
 
 from ...errors import RtstageError
 from ...log import log as _log
-from ...threads import StoppableThread
+from ...threads import Startable, StoppableThread
 from .feedback import FeedbackScheduler
 from .mapper import MidiMapper
 from .ports import _rtmidi, api_constants, match_port, open_api
 from .wire import decode_message
 
 
-class MidiControl:
+class MidiControl(Startable):
     """MIDI input and feedback output driving a :class:`~rtstage.control.protocol.Controller`.
 
     Parameters
@@ -99,12 +99,6 @@ class MidiControl:
         self._in.cancel_callback()
         del self._in
         del self._out
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
 
     # socket hooks
     def arm_learn(self, name, send_event):
