@@ -232,6 +232,20 @@ _LOW32 = np.uint64(0xFFFFFFFF)
 _DENORMAL_GUARD = 1e-30
 
 
+def container_width(container):
+    """Bits of the integer the words of a ``container``-bit container are stored in: 16 for 16, else 32.
+
+    Words of a 24-bit container (and of a 32-bit one) sit left-justified in
+    int32, so ``out_shift = container_width(container) - bits``.
+    """
+    return 16 if container == 16 else 32
+
+
+def word_dtype(container):
+    """numpy dtype of the output words ``y`` for ``container`` (a width, 16 or 32, gives the same)."""
+    return np.int16 if container_width(container) == 16 else np.int32
+
+
 class KernelState:
     """Preallocated parameter and state arrays for ``nchannels`` channels.
 
@@ -434,6 +448,37 @@ def _unlikely(typingctx, cond):
         bit = ir.IntType(1)
         expect = builder.module.declare_intrinsic("llvm.expect", [bit], ir.FunctionType(bit, [bit, bit]))
         return builder.call(expect, [args[0], ir.Constant(bit, 0)])
+
+    return sig, codegen
+
+
+@intrinsic
+def _words_as_float64(typingctx, words):
+    """The C-contiguous 2-D uint64 array ``words`` seen as one flat float64 array (same memory, no copy).
+
+    What ``words.view(np.float64).reshape(-1)`` gives, without the shape and
+    layout checks numba compiles into those two calls: their error paths store
+    a Python exception record, which the callback must not hold
+    (``tests/test_callback_ir.py``).  The kernel's ``rng_words`` is always
+    C-contiguous (:class:`KernelState`, the live shared block).
+    """
+    if not (isinstance(words, types.Array) and words.dtype == types.uint64 and words.ndim == 2 and words.layout == "C"):
+        return None
+    rtype = types.Array(types.float64, 1, "C")
+    sig = rtype(words)
+
+    def codegen(context, builder, signature, args):
+        from numba.core.imputils import impl_ret_borrowed
+        from numba.np.arrayobj import make_array, populate_array
+
+        src = make_array(signature.args[0])(context, builder, args[0])
+        out = make_array(rtype)(context, builder)
+        shape = src.shape
+        nitems = builder.mul(builder.extract_value(shape, 0), builder.extract_value(shape, 1))
+        itemsize = context.get_constant(types.intp, 8)
+        data = builder.bitcast(src.data, context.get_data_type(types.float64).as_pointer())
+        populate_array(out, data=data, shape=[nitems], strides=[itemsize], itemsize=itemsize, meminfo=src.meminfo)
+        return impl_ret_borrowed(context, builder, rtype, out._getvalue())
 
     return sig, codegen
 
@@ -676,7 +721,7 @@ def _process(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp, rng
     tap = vq.shape[0] >= nframes
     wtap = yq.shape[0] >= nframes
     dithered = kind != DITHER_NONE
-    dith = rng_words.view(np.float64).reshape(-1)
+    dith = _words_as_float64(rng_words)  # the flat float64 view, without a raising check
 
     # Many channels run in shorter chunks, so that a chunk's scratch stays in the first-level cache.
     chunk_frames = CHUNK_FRAMES if nch <= 8 else max(CHUNK_FRAMES // 4, (CHUNK_FRAMES * 8) // nch)

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import soundfile as sf
 
-from .engine import Engine
+from .engine import Engine, container_bits
 from .engine.automation import AutomationPlayer, process_with_automation
 from .errors import RtstageError
 from .log import log
@@ -64,8 +64,8 @@ SUBTYPES = {
 
 
 def default_subtype(bits):
-    """PCM_16 for words of up to 16 bits, PCM_24 above."""
-    return "PCM_16" if bits <= 16 else "PCM_24"
+    """PCM_16 for words of up to 16 bits, PCM_24 above: the smallest container's subtype."""
+    return {16: "PCM_16", 24: "PCM_24"}[container_bits(bits)]
 
 
 def check_stream_shape(samplerate, nchannels, what):

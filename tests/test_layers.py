@@ -11,6 +11,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 ROOT = Path(__file__).resolve().parent.parent
 
 _RUN = "import sys; from importlinter.cli import lint_imports; sys.exit(lint_imports(no_cache=True, no_logo=True))"
@@ -38,23 +40,18 @@ def copy_tree(tmp_path):
     return tmp_path
 
 
-def test_an_upward_import_breaks_the_layers_contract(tmp_path):
+@pytest.mark.parametrize("module, wrong_import, expected", [
+    ("kernel.py", "from .cli import main", "rtstage.kernel -> rtstage.cli"),  # the bottom importing the top
+    ("render.py", "from .control import automation", "rtstage.render -> rtstage.control"),  # a driver importing control
+])
+def test_an_upward_import_breaks_the_layers_contract(tmp_path, module, wrong_import, expected):
     root = copy_tree(tmp_path)
-    kernel = root / "rtstage" / "kernel.py"
+    path = root / "rtstage" / module
     # A function-level import counts as much as a module-level one (grimp reads every import statement).
-    kernel.write_text(kernel.read_text() + "\n\ndef _wrong():\n    from .cli import main\n\n    return main\n")
+    path.write_text(path.read_text() + f"\n\ndef _wrong():\n    {wrong_import}\n")
     status, report = lint(root)
     assert status != 0
-    assert "BROKEN" in report and "rtstage.kernel -> rtstage.cli" in report, report
-
-
-def test_a_driver_importing_control_breaks_the_layers_contract(tmp_path):
-    root = copy_tree(tmp_path)
-    render = root / "rtstage" / "render.py"
-    render.write_text(render.read_text() + "\n\ndef _wrong():\n    from .control import automation\n\n    return automation\n")
-    status, report = lint(root)
-    assert status != 0
-    assert "rtstage.render -> rtstage.control" in report, report
+    assert "BROKEN" in report and expected in report, report
 
 
 def test_a_module_outside_every_layer_breaks_the_contract(tmp_path):

@@ -14,7 +14,6 @@ stdout.
 table, no audio device needed.
 """
 
-import json
 import math
 import os
 import socket

@@ -4,7 +4,7 @@ import os
 import sys
 
 from .. import pcm
-from ..engine import Engine
+from ..engine import Engine, check_word_fits
 from ..errors import RtstageError
 from ..log import log
 from ..pipe import pipe_stream
@@ -34,8 +34,10 @@ def run_pipe(args):
     check_stream_shape(args.samplerate, args.channels, "pipe")
     settings = settings_from_args(args)
     container = pcm.engine_container(args.out_format)
-    if settings.bits > min(container, 24):
-        raise RtstageError(f"a {settings.bits}-bit word does not fit output format {args.out_format}")
+    try:
+        check_word_fits(settings.bits, container)
+    except RtstageError:
+        raise RtstageError(f"a {settings.bits}-bit word does not fit output format {args.out_format}") from None
     engine = Engine(settings, args.channels, args.samplerate, container=container)
     if args.seed is None:
         log(f"seed {settings.seed} (pass --seed {settings.seed} to reproduce)")

@@ -48,7 +48,7 @@ def register(subparsers):
     )
     p.add_argument("--samplerate", type=float, required=True, help="design sample rate in Hz")
     p.add_argument("--taps", type=int, required=True, help="error-filter taps, 1..32")
-    p.add_argument("--weighting", default="threshold", choices=sorted(D.WEIGHTINGS), help="what the design minimises (default threshold)")
+    p.add_argument("--weighting", default="threshold", choices=sorted(D.WEIGHTINGS) + sorted(D.WEIGHTING_ALIASES), help="what the design minimises (default threshold)")
     p.add_argument("--table", help="weighting table file of 'Hz dB' rows (higher dB = more audible); implies --weighting table")
     p.add_argument("--max-gain-db", type=float, help="cap on the NTF's maximum gain in dB (>= 0)")
     p.add_argument("--max-noise-gain-db", type=float, help="cap on the total noise-power gain in dB (>= 0)")

@@ -50,9 +50,9 @@ import threading
 import time
 
 from .. import params
-from ..engine import container_bits
-from ..log import log
 from ..errors import RtstageError
+from ..log import log
+from ..threads import Startable, StoppableThread
 from .target import ControlTarget
 
 POLL_S = 0.0005
@@ -63,7 +63,7 @@ def _dbfs_none(nchannels):
     return [None] * int(nchannels)
 
 
-class LiveTarget(ControlTarget):
+class LiveTarget(ControlTarget, Startable):
     """Control target over a :class:`~rtstage.live.supervisor.LiveEngine`.
 
     Parameters
@@ -89,7 +89,7 @@ class LiveTarget(ControlTarget):
     """
 
     def __init__(self, engine, automation_log=None, apply_timeout_s=1.0, poll_s=POLL_S):
-        if engine.block is None:
+        if getattr(engine, "engine", None) is None:
             raise RtstageError("the live engine must be prepared before it can be controlled")
         self.engine = engine
         self.automation_log = automation_log
@@ -102,7 +102,7 @@ class LiveTarget(ControlTarget):
         self._values = params.defaults()
         self._values.update(params.values_from_settings(engine.settings))
         self._start_seed = engine.settings.seed
-        self._container = 16 if container_bits(engine.settings.bits) == 16 else 32
+        self.core = engine.engine
         self._pending = {}
         self._pending_ticket = 0
         self._ticket = 0
@@ -113,45 +113,29 @@ class LiveTarget(ControlTarget):
         self._lock = threading.Lock()
         self._cond = threading.Condition(self._lock)
         self._wake = threading.Event()
-        self._stop = threading.Event()
-        self._thread = None
+        self._worker = StoppableThread(self._run, "rtstage-live-target")
 
     # -- lifecycle ----------------------------------------------------------------------------
     def start(self):
         """Start the housekeeping thread; returns self."""
-        if self._thread is None:
-            self._thread = threading.Thread(target=self._run, name="rtstage-live-target", daemon=True)
-            self._thread.start()
+        if not self._worker.started:
+            self._worker.start()
         return self
 
     def stop(self):
         """Stop the housekeeping thread after recording what the callback applied last."""
-        self._stop.set()
+        self._worker.request_stop()
         self._wake.set()
-        if self._thread is not None:
-            self._thread.join()
-            self._thread = None
+        self._worker.stop()
         if self._inflight is not None:
             self._check_applied()
         with self._cond:
             self._cond.notify_all()
 
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
-
     # -- ControlTarget ------------------------------------------------------------------------
     def get(self):
         with self._lock:
             return dict(self._values)
-
-    def check(self, values):
-        bits = values.get("bits")
-        if bits is not None and (16 if container_bits(bits) == 16 else 32) != self._container:
-            word = "at most 16" if self._container == 16 else "17 to 24"
-            raise RtstageError(f"bits={bits} does not fit this stream's {self._container}-bit output ({word} bits)")
 
     def submit(self, values):
         self.check(values)
@@ -166,14 +150,8 @@ class LiveTarget(ControlTarget):
         self._wake.set()
         return ticket
 
-    def wait(self, ticket, timeout_s=None):
-        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
-        with self._cond:
-            self._cond.wait_for(lambda: self._applied_ticket >= ticket or self._stop.is_set(), timeout=timeout_s)
-            for t in range(ticket, self._applied_ticket + 1):
-                if t in self._applied_frame:
-                    return self._applied_frame[t]
-            return None
+    def _stopping(self):
+        return self._worker.stopping
 
     def status(self):
         live = self.engine.status()
@@ -184,7 +162,7 @@ class LiveTarget(ControlTarget):
             "samplerate": live.get("samplerate"),
             "nchannels": live.get("channels"),
             "blocksize": live.get("blocksize"),
-            "container_bits": self._container,
+            "container_bits": self.core.width,
             "uptime_s": live.get("uptime_s", 0.0),
             "xruns": int(flags.get("flagged_callbacks", 0)),
             "cpu_load": live.get("cpu_load", 0.0),
@@ -197,14 +175,10 @@ class LiveTarget(ControlTarget):
         }
 
     def _auto_muted(self):
-        from .. import kernel as K
-
-        return [bool(v) for v in self.engine.block.kernel.counts[:, K.CNT_AM_MUTED]]
+        return [bool(v) for v in self.core.auto_muted]
 
     def _auto_muted_frames(self):
-        from .. import kernel as K
-
-        return [int(v) for v in self.engine.block.kernel.counts[:, K.CNT_AM_FRAMES]]
+        return [int(v) for v in self.core.auto_muted_frames]
 
     def meters(self):
         meters = getattr(self.engine, "meters", None)
@@ -229,11 +203,9 @@ class LiveTarget(ControlTarget):
     def _run(self):
         from ..live.realtime import enter_control_thread
 
-        from ..live.handoff import BlockWaiter
-
         self.engine.control_thread_info = enter_control_thread()  # SCHED_FIFO below the audio thread, if permitted
-        self._waiter = BlockWaiter(self.engine.block.ctl, self.engine.samplerate, self.engine.blocksize)
-        while not self._stop.is_set():
+        self._waiter = self.engine.block_waiter()
+        while not self._worker.stopping:
             if self._inflight is not None:
                 self._check_applied()
                 if self._inflight is not None:
@@ -247,7 +219,7 @@ class LiveTarget(ControlTarget):
     def _try_publish(self):
         """Publish the pending changes if nothing is in flight; True when it published."""
         with self._pub_lock:
-            if self._inflight is not None or self._stop.is_set():
+            if self._inflight is not None or self._worker.stopping:
                 return False
             with self._cond:
                 values, ticket = self._pending, self._pending_ticket
@@ -266,13 +238,11 @@ class LiveTarget(ControlTarget):
             return True
 
     def _check_applied(self):
-        from ..live import shared as S
-
         with self._pub_lock:
             if self._inflight is None:
                 return
             seq, ticket, values = self._inflight
-            applied_seq, frame = S.applied(self.engine.block.ctl)
+            applied_seq, frame = self.engine.last_applied()
             if applied_seq >= seq:
                 self._inflight = None
                 waiter = getattr(self, "_waiter", None)
@@ -285,10 +255,4 @@ class LiveTarget(ControlTarget):
             if self.automation_log is not None:
                 self.automation_log.write(frame, values)
         with self._cond:
-            for t in range(self._applied_ticket + 1, ticket + 1):
-                self._applied_frame[t] = frame
-            if len(self._applied_frame) > 1024:
-                for t in sorted(self._applied_frame)[:-512]:
-                    del self._applied_frame[t]
-            self._applied_ticket = max(self._applied_ticket, ticket)
-            self._cond.notify_all()
+            self._record_applied(ticket, frame)

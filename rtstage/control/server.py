@@ -41,6 +41,7 @@ import time
 from .. import __version__
 from ..log import log as _log
 from ..errors import RtstageError
+from ..threads import Startable
 from . import DEFAULT_CONTROL_PORT, PROTOCOL_VERSION
 from .protocol import Dispatcher, Session, encode, error_reply, parse_request
 
@@ -145,7 +146,7 @@ class _Client:
         self.writer.close()
 
 
-class ControlServer:
+class ControlServer(Startable):
     """JSON-lines control server on a thread of its own.
 
     Parameters
@@ -241,12 +242,6 @@ class ControlServer:
         self._thread.join()
         self._pool.shutdown(wait=True)
         self._thread = None
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
 
     def _run(self):
         loop = asyncio.new_event_loop()

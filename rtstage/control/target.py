@@ -57,9 +57,8 @@ import time
 import numpy as np
 
 from .. import params
-from ..engine import container_bits
 from ..log import log
-from ..errors import RtstageError
+from ..threads import Startable, StoppableThread
 
 
 ERROR_GAIN_CAUTION = (
@@ -75,6 +74,8 @@ class ControlTarget:
 
     _cautioned = False
     _cautions = None
+    core = None
+    """The :class:`rtstage.engine.Engine` behind the target (settings, container, counters), if any."""
 
     def note_caution(self, values, ticket):
         """Log the hearing-safety caution the first time ``values`` raise ``error_gain_db`` above 0 dB.
@@ -100,15 +101,42 @@ class ControlTarget:
         raise NotImplementedError
 
     def check(self, values):
-        """Raise :class:`RtstageError` for valid changes this target cannot take."""
+        """Raise :class:`RtstageError` for valid changes this target cannot take (a word that does not fit)."""
+        bits = values.get("bits")
+        if bits is not None and self.core is not None:
+            self.core.check_bits(bits)
 
     def submit(self, values):
         """Queue validated changes atomically for the next block boundary, without waiting; returns a ticket."""
         raise NotImplementedError
 
     def wait(self, ticket, timeout_s=None):
-        """Wait (at most ``timeout_s``) until the changes of ``ticket`` took effect; their sample index, or None."""
-        raise NotImplementedError
+        """Wait (at most ``timeout_s``) until the changes of ``ticket`` took effect; their sample index, or None.
+
+        Provided for targets that keep ``_cond`` (a Condition), ``_applied_ticket``, ``_applied_frame`` and
+        ``apply_timeout_s`` and call :meth:`_record_applied` when changes take effect.
+        """
+        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
+        with self._cond:
+            self._cond.wait_for(lambda: self._applied_ticket >= ticket or self._stopping(), timeout=timeout_s)
+            for t in range(ticket, self._applied_ticket + 1):
+                if t in self._applied_frame:
+                    return self._applied_frame[t]
+            return None
+
+    def _stopping(self):
+        """True when :meth:`wait` should give up at once (the target is stopping)."""
+        return False
+
+    def _record_applied(self, ticket, frame):
+        """With ``_cond`` held: the changes up to ``ticket`` took effect at ``frame`` (None: not applied); wakes waiters."""
+        for t in range(self._applied_ticket + 1, ticket + 1):
+            self._applied_frame[t] = frame
+        if len(self._applied_frame) > 1024:
+            for t in sorted(self._applied_frame)[:-512]:
+                del self._applied_frame[t]
+        self._applied_ticket = max(self._applied_ticket, ticket)
+        self._cond.notify_all()
 
     def set(self, values):
         """Apply validated changes atomically; return the sample index they took effect at, or None."""
@@ -153,7 +181,7 @@ class EngineTarget(ControlTarget):
     """
 
     def __init__(self, engine, blocksize=256, automation_log=None, apply_timeout_s=0.5):
-        self.engine = engine
+        self.engine = self.core = engine
         self.blocksize = int(blocksize)
         self.automation_log = automation_log
         self.apply_timeout_s = float(apply_timeout_s)
@@ -166,7 +194,7 @@ class EngineTarget(ControlTarget):
         self._start_seed = engine.settings.seed
         self._pending = {}
         self._seq = 0
-        self._applied_seq = 0
+        self._applied_ticket = 0
         self._applied_frame = {}
         self._lock = threading.Lock()
         self._cond = threading.Condition(self._lock)
@@ -178,11 +206,6 @@ class EngineTarget(ControlTarget):
     def get(self):
         with self._lock:
             return dict(self._values)
-
-    def check(self, values):
-        bits = values.get("bits")
-        if bits is not None and container_bits(bits) > self.engine.container:
-            raise RtstageError(f"bits={bits} does not fit this engine's {self.engine.container}-bit output")
 
     def submit(self, values):
         self.check(values)
@@ -197,15 +220,6 @@ class EngineTarget(ControlTarget):
             with self._engine_lock:
                 self._apply_pending()
         return seq
-
-    def wait(self, ticket, timeout_s=None):
-        timeout_s = self.apply_timeout_s if timeout_s is None else timeout_s
-        with self._cond:
-            self._cond.wait_for(lambda: self._applied_seq >= ticket, timeout=timeout_s)
-            for s in range(ticket, self._applied_seq + 1):
-                if s in self._applied_frame:
-                    return self._applied_frame[s]
-            return None
 
     def status(self):
         with self._lock:
@@ -241,16 +255,11 @@ class EngineTarget(ControlTarget):
             self.applied.append((frame, pending, time.monotonic()))
             if self.automation_log is not None:
                 self.automation_log.write(frame, pending)
-            with self._cond:
-                for s in range(self._applied_seq + 1, seq + 1):
-                    self._applied_frame[s] = frame
-                if len(self._applied_frame) > 1024:
-                    for s in sorted(self._applied_frame)[:-512]:
-                        del self._applied_frame[s]
+        else:
+            frame = None
         with self._cond:
-            if seq > self._applied_seq:
-                self._applied_seq = seq
-                self._cond.notify_all()
+            if seq > self._applied_ticket:
+                self._record_applied(seq, frame)
 
     def process(self, x, out=None):
         """Apply pending changes, then requantize block ``x``; returns the words."""
@@ -266,7 +275,7 @@ class EngineTarget(ControlTarget):
 
     def _meter_frame(self, y):
         nch = self.engine.nchannels
-        full_scale = float(2 ** (self.engine.container - 1)) if self.engine.container == 16 else float(2**31)
+        full_scale = self.engine.full_scale
         if y is None or len(y) == 0:
             peak = [None] * nch
             rms = [None] * nch
@@ -294,7 +303,7 @@ def sine_block(frame, nframes, nchannels, samplerate, level_dbfs=-20.0, frequenc
     return (10.0 ** (level_dbfs / 20.0)) * np.sin(phase)
 
 
-class BlockDriver:
+class BlockDriver(Startable):
     """A thread that runs an :class:`EngineTarget` in real time, as a stand-in for the live engine.
 
     Parameters
@@ -324,33 +333,24 @@ class BlockDriver:
         self.source = source or (lambda f, n: sine_block(f, n, eng.nchannels, eng.samplerate))
         self.tap = [] if tap else None
         self.block_times_s = []
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="rtstage-block-driver", daemon=True)
+        self._worker = StoppableThread(self._run, "rtstage-block-driver")
         self.error = None
 
     def start(self):
         """Start the thread; the target reports ``running`` from now on."""
         self.target.running = True
-        self._thread.start()
+        self._worker.start()
         return self
 
     def stop(self):
         """Stop the thread and wait for it."""
-        self._stop.set()
-        if self._thread.is_alive():
-            self._thread.join()
+        self._worker.stop()
         self.target.running = False
 
     def wait(self, timeout_s=None):
         """Wait until ``nblocks`` are done; returns True when the thread has ended."""
-        self._thread.join(timeout_s)
-        return not self._thread.is_alive()
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
+        self._worker.join(timeout_s)
+        return not self._worker.alive
 
     def _run(self):
         target = self.target
@@ -360,7 +360,7 @@ class BlockDriver:
         t_next = time.monotonic()
         count = 0
         try:
-            while not self._stop.is_set() and (self.nblocks is None or count < self.nblocks):
+            while not self._worker.stopping and (self.nblocks is None or count < self.nblocks):
                 if self.realtime:
                     delay = t_next - time.monotonic()
                     if delay > 0:

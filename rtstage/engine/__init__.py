@@ -23,4 +23,6 @@ from ..settings import (  # noqa: F401  (the settings value object and its limit
     EngineSettings, new_seed, unsafe_warning,
 )
 from .automation import AutomationPlayer, process_with_automation  # noqa: F401
-from .core import Engine, container_bits, encode_params  # noqa: F401
+from .core import (  # noqa: F401
+    CONTAINERS, Engine, StateView, check_word_fits, container_bits, container_width, encode_params, word_dtype,
+)

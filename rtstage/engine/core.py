@@ -1,22 +1,9 @@
-"""The engine: validated settings, prepared state, block processing.
+"""The engine object model: settings -> validated, encoded kernel parameters; state and counters owned.
 
-Three phases, as in any real-time processor: construct an :class:`Engine`
-for a channel count and sample rate (everything is sized there; the kernel is
-compiled, or loaded from numba's cache, at the first block: the offline
-drivers do not need it earlier, and the live engine warms its own compiled
-callback before the stream opens), call :meth:`Engine.process` on blocks of any size
-(zero included), and read its counters.  The offline renderer, the pipe and
-the live callback all drive the same compiled :func:`rtstage.kernel.process_block`.
-
-Examples
---------
->>> import numpy as np
->>> from rtstage import Engine, EngineSettings
->>> engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=7),
-...                 nchannels=2, samplerate=44100)
->>> words = engine.process(np.zeros((512, 2)))
->>> words.dtype, words.shape
-(dtype('int16'), (512, 2))
+The container rule (:func:`check_word_fits`), the encoding
+(:func:`encode_params`) and the reading of the kernel's counters
+(:class:`StateView`) are written here once, for the offline drivers and the
+live engine alike; see :mod:`rtstage.engine` for the three phases.
 """
 
 from dataclasses import replace
@@ -24,10 +11,15 @@ from dataclasses import replace
 import numpy as np
 
 from .. import kernel as K
-from ..dither import DITHER_KINDS, feedback_peak_lsb
+from ..kernel import container_width, word_dtype
+from ..dither import DITHER_BY_CODE, DITHER_KINDS, feedback_peak_lsb
 from ..errors import RtstageError
 from ..settings import (ERROR_CEILING_DBFS, GAIN_RAMP_SECONDS, MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE,
                         MONITOR_MODES)
+
+
+CONTAINERS = (16, 24, 32)
+"""Output containers in bits: 16 (int16), 24 and 32 (both left-justified in int32)."""
 
 
 def container_bits(bits):
@@ -35,64 +27,35 @@ def container_bits(bits):
     return 16 if bits <= 16 else 24
 
 
-class Engine:
-    """Requantizer for ``nchannels`` channels at ``samplerate``.
+def check_word_fits(bits, container, exact=False):
+    """Raise :class:`RtstageError` unless a ``bits``-bit word may use ``container``.
+
+    The one container rule: a word fits a container at least as wide as
+    :func:`container_bits` of it.  With ``exact`` (a live stream, whose device
+    format is fixed when it opens) the word must need exactly this container:
+    a 16-bit stream takes words of at most 16 bits, a 24-bit one words of 17
+    to 24 bits.
+    """
+    need = container_bits(bits)
+    if need > container or (exact and need != container):
+        if exact:
+            allowed = "at most 16" if container == 16 else "17 to 24"
+        else:
+            allowed = "at most 16" if container == 16 else "at most 24"
+        raise RtstageError(f"bits={bits} does not fit this engine's {container}-bit output ({allowed} bits)")
+
+
+class StateView:
+    """Read access to kernel state: the one place the kernel's counters and applied parameters are read.
 
     Parameters
     ----------
-    settings : EngineSettings
-        Word length, dither, shaper, seed, gain.  A missing seed is drawn here
-        and can be read back from ``engine.settings.seed``.
-    nchannels : int
-        Channel count, 1..64.
-    samplerate : int
-        Sample rate in Hz, 8000..384000.
-    container : int or None
-        Output container width in bits (16, 24 or 32); None picks the smallest
-        of 16 and 24 that holds ``bits``.  24-bit words are left-justified in
-        int32.
-    start_frame : int
-        Sample index of the first frame (dither is a function of it).
+    state : rtstage.kernel.KernelState
+        The arrays (the engine's own, or views into the live shared block).
     """
 
-    def __init__(self, settings, nchannels, samplerate, container=None, start_frame=0):
-        if isinstance(nchannels, bool) or not isinstance(nchannels, (int, np.integer)) or not 1 <= nchannels <= MAX_CHANNELS:
-            raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {nchannels}")
-        if (isinstance(samplerate, bool) or not isinstance(samplerate, (int, float, np.integer, np.floating))
-                or not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE):
-            raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
-        self.settings = settings.resolved(samplerate)
-        self.nchannels = int(nchannels)
-        self.samplerate = samplerate
-        self.container = container_bits(self.settings.bits) if container is None else int(container)
-        if self.container not in (16, 24, 32) or self.container < self.settings.bits:
-            raise RtstageError(f"a {self.settings.bits}-bit word does not fit a {self.container}-bit container")
-        self.dtype = np.int16 if self.container == 16 else np.int32
-        self.state = K.KernelState(self.nchannels)
-        self._no_tap = np.empty((0, self.nchannels), dtype=np.float64)
-        self.apply(self.settings, ramp=False)
-        self.state.reset(start_frame)
-
-    @property
-    def out_shift(self):
-        """Left shift from the word to its container."""
-        width = 16 if self.container == 16 else 32
-        return width - self.settings.bits
-
-    def apply(self, settings, ramp=True):
-        """Load new settings at the next block boundary; gain changes ramp unless ``ramp`` is False.
-
-        The word length may not change the container (a 16-bit engine cannot
-        switch to 20 bits).  The seed is kept from the engine's start.
-        """
-        settings = replace(settings, seed=self.settings.seed).resolved(self.samplerate)
-        if container_bits(settings.bits) > self.container:
-            raise RtstageError(f"bits={settings.bits} does not fit this engine's {self.container}-bit output")
-        self.settings = settings
-        st = self.state
-        encode_params(settings, self.samplerate, self.out_shift, st.iparams, st.fparams)
-        if not ramp:
-            st.settle()
+    def __init__(self, state):
+        self.state = state
 
     @property
     def frame(self):
@@ -118,6 +81,144 @@ class Engine:
     def auto_muted_frames(self):
         """Frames per channel during which auto-mute held the channel muted, since the start."""
         return self.state.counts[:, K.CNT_AM_FRAMES].copy()
+
+    def meter_key(self):
+        """(bits, dither id, dither scale, shaper taps, out_shift) of the parameters the kernel holds now.
+
+        The decoding of :func:`encode_params` for what the meters need; on
+        live memory, read it only while no parameter change is being taken.
+        """
+        iparams, fparams = self.state.iparams, self.state.fparams
+        ntaps = int(iparams[K.IP_NTAPS])
+        return (
+            int(iparams[K.IP_BITS]),
+            DITHER_BY_CODE[int(iparams[K.IP_DITHER])].id,
+            float(fparams[K.FP_DITHER_SCALE]),
+            tuple(float(h) for h in fparams[K.FP_COEF0 : K.FP_COEF0 + ntaps]),
+            int(iparams[K.IP_OUT_SHIFT]),
+        )
+
+
+class Engine(StateView):
+    """Requantizer for ``nchannels`` channels at ``samplerate``: settings in, encoded parameters and state owned.
+
+    The offline drivers call :meth:`process`; the live engine moves the state
+    into its shared block with :meth:`use_memory` and lets the compiled
+    callback run the kernel on it.  Either way this object is the one that
+    validates settings, checks the container, encodes parameters and reads
+    the counters.
+
+    Parameters
+    ----------
+    settings : EngineSettings
+        Word length, dither, shaper, seed, gain.  A missing seed is drawn here
+        and can be read back from ``engine.settings.seed``.
+    nchannels : int
+        Channel count, 1..64.
+    samplerate : int
+        Sample rate in Hz, 8000..384000.
+    container : int or None
+        Output container width in bits (16, 24 or 32); None picks the smallest
+        of 16 and 24 that holds ``bits``.  24-bit words are left-justified in
+        int32.
+    start_frame : int
+        Sample index of the first frame (dither is a function of it).
+    exact_container : bool
+        Later word lengths must need exactly this container (a live stream;
+        see :func:`check_word_fits`).
+    """
+
+    def __init__(self, settings, nchannels, samplerate, container=None, start_frame=0, exact_container=False):
+        if isinstance(nchannels, bool) or not isinstance(nchannels, (int, np.integer)) or not 1 <= nchannels <= MAX_CHANNELS:
+            raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {nchannels}")
+        if (isinstance(samplerate, bool) or not isinstance(samplerate, (int, float, np.integer, np.floating))
+                or not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE):
+            raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
+        self.settings = settings.resolved(samplerate)
+        self.nchannels = int(nchannels)
+        self.samplerate = samplerate
+        self.container = container_bits(self.settings.bits) if container is None else int(container)
+        if self.container not in CONTAINERS:
+            raise RtstageError(f"container must be one of {', '.join(map(str, CONTAINERS))} bits, got {self.container}")
+        check_word_fits(self.settings.bits, self.container)
+        self.exact_container = bool(exact_container)
+        self.dtype = word_dtype(self.container)
+        super().__init__(K.KernelState(self.nchannels))
+        self._publish = None
+        self._no_tap = np.empty((0, self.nchannels), dtype=np.float64)
+        self.apply(self.settings, ramp=False)
+        self.state.reset(start_frame)
+
+    @property
+    def width(self):
+        """Bits of the integer each word is stored in: 16 or 32."""
+        return container_width(self.container)
+
+    @property
+    def full_scale(self):
+        """Full scale of the stored words, 2^(width-1)."""
+        return float(2 ** (self.width - 1))
+
+    @property
+    def out_shift(self):
+        """Left shift from the word to its container."""
+        return self.width - self.settings.bits
+
+    def check_bits(self, bits):
+        """Raise :class:`RtstageError` when this engine cannot switch to ``bits``-bit words."""
+        check_word_fits(bits, self.container, exact=self.exact_container)
+
+    def use_memory(self, state, publish=None):
+        """Move the state into ``state`` (for instance views into the live shared block) and work there.
+
+        Parameters
+        ----------
+        state : rtstage.kernel.KernelState
+            Arrays of this engine's channel count; the current parameters and
+            state are copied into them.
+        publish : callable or None
+            ``publish(iparams, fparams) -> int``: how later parameter changes
+            reach the kernel once something else runs it (the live seqlock);
+            :meth:`apply` then returns its sequence number.  None: changes are
+            written in place, as offline.
+        """
+        for mine, theirs in zip(self.state.arrays(), state.arrays()):
+            theirs[...] = mine
+        self.state = state
+        self._publish = publish
+        if publish is not None:
+            self._new_ip = np.zeros(K.IP_LEN, dtype=np.int64)
+            self._new_fp = np.zeros(K.FP_LEN, dtype=np.float64)
+        return self
+
+    def accept(self, settings):
+        """``settings`` resolved for this engine (its seed kept), or RtstageError when the word does not fit."""
+        settings = replace(settings, seed=self.settings.seed).resolved(self.samplerate)
+        self.check_bits(settings.bits)
+        return settings
+
+    def apply(self, settings, ramp=True):
+        """Load new settings at the next block boundary; gain changes ramp unless ``ramp`` is False.
+
+        The word length may not change the container (a 16-bit engine cannot
+        switch to 20 bits).  The seed is kept from the engine's start.
+
+        Returns
+        -------
+        int or None
+            With a ``publish`` hook (:meth:`use_memory`), its sequence number
+            for the change; otherwise None (the change is in place).
+        """
+        settings = self.accept(settings)
+        self.settings = settings
+        if self._publish is not None:
+            encode_params(settings, self.samplerate, self.out_shift, self._new_ip, self._new_fp)
+            return int(self._publish(self._new_ip, self._new_fp))
+        st = self.state
+        encode_params(settings, self.samplerate, self.out_shift, st.iparams, st.fparams)
+        if not ramp:
+            st.settle()
+        return None
 
     def process(self, x, out=None, quantizer_in=None, requantized=None):
         """Requantize a block ``x`` of shape (frames, nchannels), float32 or float64.

@@ -50,12 +50,12 @@ CALLBACK_SIGNATURE = types.intc(types.voidptr, types.voidptr, types.ulong, types
 """``int (const void *in, void *out, unsigned long frames, const PaStreamCallbackTimeInfo *, PaStreamCallbackFlags, void *user)``."""
 
 
-@njit(nogil=True, inline="always")
+@njit(nogil=True, inline="always", error_model="numpy")
 def _view(table, slot, shape, dtype):
     return carray(address_to_voidptr(table[slot]), shape, dtype)
 
 
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def _run(x, y, n, table, ctl, nch):
     """Kernel on ``n`` frames of ``x`` into ``y``, then the words into the tap ring and the meter ring.
 
@@ -87,7 +87,7 @@ def _run(x, y, n, table, ctl, nch):
                            vq, yq, n)
 
 
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def _blocks(in_addr, y, frames, table, ctl, nch):
     """Feed ``frames`` frames from the configured input to the kernel, in pieces of at most max_frames.
 
@@ -128,7 +128,7 @@ def _blocks(in_addr, y, frames, table, ctl, nch):
     return done
 
 
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def callback_core(in_addr, out_addr, frames, status_flags, table_addr):
     """One PortAudio callback, on raw addresses; returns paContinue or paComplete.
 
@@ -205,7 +205,7 @@ def _callback(input_ptr, output_ptr, frames, time_info, status_flags, user_data)
     return result
 
 
-_DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/shared.py", "live/sources.py", "live/cfunc.py",
+_DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/ring.py", "live/shared.py", "live/sources.py", "live/cfunc.py",
             "live/timing.py")
 
 
@@ -231,6 +231,11 @@ def cache_dir():
 _BUILT = {}
 
 
+def compile_callback(cache=False):
+    """Compile the PortAudio callback as a numba ``cfunc`` (``error_model="numpy"``, like everything it calls)."""
+    return numba.cfunc(CALLBACK_SIGNATURE, nopython=True, cache=cache, error_model="numpy")(_callback)
+
+
 def build_callback():
     """Compile (or load from the cache) the PortAudio callback; returns the numba ``CFunc``.
 
@@ -243,7 +248,7 @@ def build_callback():
     try:
         os.makedirs(path, exist_ok=True)
         numba.config.CACHE_DIR = path
-        compiled = numba.cfunc(CALLBACK_SIGNATURE, nopython=True, cache=True)(_callback)
+        compiled = compile_callback(cache=True)
     finally:
         numba.config.CACHE_DIR = saved
     _BUILT["cfunc"] = compiled

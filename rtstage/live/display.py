@@ -23,10 +23,10 @@ down first and follow local codes and licensed practice on exposure.
 
 import math
 import sys
-import threading
 import time
 
 from ..meters.loudness import loudness_line, verdict_text
+from ..threads import Startable, StoppableThread
 
 BAR_WIDTH = 40
 """Characters of a level bar."""
@@ -182,7 +182,7 @@ def status_line(snap):
     return "rtstage: meters " + " | ".join(parts)
 
 
-class LiveDisplay:
+class LiveDisplay(Startable):
     """Show meter snapshots on stderr until stopped (see the module notes).
 
     Parameters
@@ -216,26 +216,17 @@ class LiveDisplay:
             terminal = bool(isatty()) if callable(isatty) else False
         self.terminal = terminal
         self.frames_drawn = 0
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="rtstage-display", daemon=True)
+        self._worker = StoppableThread(self._run, "rtstage-display")
 
     def start(self):
         """Start drawing (does nothing with ``quiet``)."""
         if not self.quiet:
-            self._thread.start()
+            self._worker.start()
         return self
 
     def stop(self):
         """Stop drawing; the terminal keeps the last panel."""
-        self._stop.set()
-        if self._thread.is_alive():
-            self._thread.join()
-
-    def __enter__(self):
-        return self.start()
-
-    def __exit__(self, *exc):
-        self.stop()
+        self._worker.stop()
 
     def _snapshot(self):
         try:
@@ -260,12 +251,12 @@ class LiveDisplay:
             while True:
                 live.update(Text(render_text(self._snapshot())), refresh=True)
                 self.frames_drawn += 1
-                if self._stop.wait(period_s):
+                if self._worker.wait(period_s):
                     break
 
     def _run_lines(self):
         next_t = time.monotonic() + STATUS_LINE_S
-        while not self._stop.wait(max(0.0, next_t - time.monotonic())):
+        while not self._worker.wait(max(0.0, next_t - time.monotonic())):
             next_t += STATUS_LINE_S
             print(status_line(self._snapshot()), file=self.stream, flush=True)
             self.frames_drawn += 1

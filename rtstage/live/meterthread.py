@@ -45,9 +45,9 @@ import time
 
 import numpy as np
 
-from .. import kernel as K
-from ..dither import DITHER_BY_CODE
+from ..engine import StateView
 from ..meters import MeterBank
+from ..threads import StoppableThread
 from . import shared as S
 
 CHUNK_FRAMES = 4096
@@ -65,18 +65,6 @@ def _peak_rms_dbfs(peak, sumsq, frames):
         peaks.append(20.0 * math.log10(p) if frames and p > 0.0 else None)
         rmss.append(10.0 * math.log10(2.0 * s / frames) if frames and s > 0.0 else None)
     return peaks, rmss
-
-
-def kernel_meter_key(iparams, fparams):
-    """(bits, dither id, dither scale, shaper taps, out_shift) from kernel parameter arrays."""
-    ntaps = int(iparams[K.IP_NTAPS])
-    return (
-        int(iparams[K.IP_BITS]),
-        DITHER_BY_CODE[int(iparams[K.IP_DITHER])].id,
-        float(fparams[K.FP_DITHER_SCALE]),
-        tuple(float(h) for h in fparams[K.FP_COEF0 : K.FP_COEF0 + ntaps]),
-        int(iparams[K.IP_OUT_SHIFT]),
-    )
 
 
 class MeterThread:
@@ -97,13 +85,18 @@ class MeterThread:
         Snapshots per second.
     loudness_target : rtstage.meters.loudness.LoudnessTarget or None
         Delivery target the snapshots' ``loudness`` section is checked against.
+    engine : rtstage.engine.StateView or None
+        Where the kernel's counters and applied parameters are read (the live
+        engine's :class:`~rtstage.engine.Engine`); None: a view of the block's
+        kernel state.
     """
 
     def __init__(self, block, samplerate, shaper_name=None, chunk_frames=CHUNK_FRAMES, report_hz=DEFAULT_REPORT_HZ,
-                 loudness_target=None):
+                 loudness_target=None, engine=None):
         if block.ctl[S.C_METER_ON] == 0:
             raise ValueError("the shared block has no meter ring")
         self.block = block
+        self.engine = engine if engine is not None else StateView(block.kernel)
         self.samplerate = int(samplerate)
         self.shaper_name = shaper_name
         self.chunk_frames = int(chunk_frames)
@@ -124,33 +117,32 @@ class MeterThread:
         self._level_frames = 0
         self._latest = None
         self._lock = threading.Lock()
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="rtstage-meters", daemon=True)
+        self._worker = StoppableThread(self._run, "rtstage-meters")
         self.error = None
         self.busy_s = 0.0
         """Thread CPU time spent draining, metering and reporting (seconds)."""
         key = self._kernel_key()
-        self._start_bank(key if key is not None else kernel_meter_key(block.kernel.iparams, block.kernel.fparams), 0)
+        self._start_bank(key if key is not None else self.engine.meter_key(), 0)
 
     # --- thread -----------------------------------------------------------------------
     def start(self):
         """Start draining."""
-        self._thread.start()
+        self._worker.start()
         return self
 
     def stop(self):
         """Stop the thread after a last drain; returns the final snapshot."""
-        self._stop.set()
-        if self._thread.is_alive():
-            self._thread.join()
+        if self._worker.alive:
+            self._worker.stop()
         else:
+            self._worker.request_stop()
             self.step(final=True)
         return self.latest()
 
     def _run(self):
         last_report = 0.0
         try:
-            while not self._stop.wait(POLL_S):
+            while not self._worker.wait(POLL_S):
                 t0 = time.thread_time()
                 now = time.monotonic()
                 due = now - last_report >= self.report_interval_s
@@ -169,7 +161,7 @@ class MeterThread:
         seq, _ = S.applied(ctl)
         if int(ctl[S.C_PARAM_SEQ]) != int(seq):
             return None
-        key = kernel_meter_key(self.block.kernel.iparams, self.block.kernel.fparams)
+        key = self.engine.meter_key()
         seq2, _ = S.applied(ctl)
         if seq2 != seq or int(ctl[S.C_PARAM_SEQ]) != int(seq):
             return None
@@ -231,7 +223,7 @@ class MeterThread:
         # Head first, then the applied sample index: a change applied inside
         # the frames up to this head is then visible (the callback records it
         # before it writes the block).
-        limit = self._read_frames + int(b.ctl[S.C_MRING_HEAD] - b.ctl[S.C_MRING_TAIL])
+        limit = self._read_frames + S.ring_backlog(b.ctl, S.C_MRING_HEAD, S.C_MRING_TAIL)
         hold = self._watch_settings()
         if hold is not None:
             limit = min(limit, max(hold, self._read_frames))
@@ -259,10 +251,9 @@ class MeterThread:
             self._publish()
 
     def _publish(self):
-        bank = self.block.kernel
         report = self._bank.report()
-        clipped = bank.counts[:, K.CNT_CLIPPED].tolist()
-        nonfinite = bank.counts[:, K.CNT_NONFINITE].tolist()
+        clipped = self.engine.clipped.tolist()
+        nonfinite = self.engine.nonfinite.tolist()
         for c, ch in enumerate(report["channels"]):
             ch["clipped_samples"] = int(clipped[c])
             ch["nonfinite_samples"] = int(nonfinite[c])
@@ -282,7 +273,7 @@ class MeterThread:
             "clipped": [int(v) for v in clipped],
             "nonfinite": [int(v) for v in nonfinite],
             "meter_dropped_frames": int(ctl[S.C_MRING_DROPPED]),
-            "meter_backlog_frames": int(ctl[S.C_MRING_HEAD] - ctl[S.C_MRING_TAIL]),
+            "meter_backlog_frames": S.ring_backlog(ctl, S.C_MRING_HEAD, S.C_MRING_TAIL),
             "meter_thread_busy_s": round(self.busy_s, 6),
         })
         with self._lock:

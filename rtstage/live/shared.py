@@ -26,11 +26,12 @@ The callback never waits: a torn read is simply retried one block later.
 
 Ring (words, callback → tap writer)
 -----------------------------------
-``ctl[C_RING_HEAD]`` and ``ctl[C_RING_TAIL]`` count frames written and read
-since the start; the slot of frame k is ``k % ring_frames``.  The callback
-writes a block only if it fits whole (otherwise it adds the block's frames to
-``ctl[C_RING_DROPPED]``), then advances the head after a fence; the consumer
-(:func:`ring_read`) copies up to the head and advances the tail after a fence.
+One SPSC ring of :mod:`rtstage.live.ring`: ``ctl[C_RING_HEAD]`` and
+``ctl[C_RING_TAIL]`` count frames written and read since the start; the slot
+of frame k is ``k % ring_frames``.  The callback writes a block only if it
+fits whole (otherwise it adds the block's frames to ``ctl[C_RING_DROPPED]``),
+then advances the head after a fence; the consumer (:func:`ring_read`) copies
+up to the head and advances the tail after a fence.
 
 Meter ring (quantizer input and words, callback → meter thread)
 ---------------------------------------------------------------
@@ -48,6 +49,7 @@ import numpy as np
 from numba import njit
 
 from .. import kernel as K
+from . import ring as R
 from ._ptr import fence
 
 # --- table of addresses (userdata) -----------------------------------------------
@@ -151,7 +153,7 @@ FLAG_COUNTERS = (
 def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames, meter_frames=0):
     """(slot, shape, dtype) of every shared array, in table order."""
     nch = int(nchannels)
-    out_dtype = np.int16 if out_bits == 16 else np.int32
+    out_dtype = K.word_dtype(out_bits)
     spec = [None] * T_LEN
     spec[T_KIP] = ((K.IP_LEN,), np.int64)
     spec[T_KFP] = ((K.FP_LEN,), np.float64)
@@ -216,7 +218,7 @@ class SharedBlock:
         self.nchannels = int(nchannels)
         self.geometry = (self.nchannels, int(out_bits), int(max_frames), int(ring_frames), int(src_frames),
                          int(meter_frames))
-        self.out_dtype = np.int16 if out_bits == 16 else np.int32
+        self.out_dtype = K.word_dtype(out_bits)
         spec, offsets, self.nbytes = _layout(*self.geometry)
         if buffer is None:
             buffer = np.zeros(self.nbytes, dtype=np.uint8)
@@ -255,7 +257,7 @@ class SharedBlock:
         return int(self.ctl[index])
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def publish_params(ctl, pending_ip, pending_fp, new_ip, new_fp):
     """Seqlock writer: copy ``new_ip``/``new_fp`` into the pending block; returns the new (even) sequence number."""
     seq = ctl[C_PARAM_SEQ]
@@ -270,7 +272,7 @@ def publish_params(ctl, pending_ip, pending_fp, new_ip, new_fp):
     return seq + 2
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def applied(ctl):
     """(sequence number, sample index) of the parameters the callback last took, read in order."""
     seq = ctl[C_APPLIED_SEQ]
@@ -279,7 +281,7 @@ def applied(ctl):
     return seq, frame
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def take_params(ctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fparams, frame):
     """Seqlock reader (the callback's side): load new pending parameters if a consistent copy is available."""
     s1 = ctl[C_PARAM_SEQ]
@@ -303,99 +305,47 @@ def take_params(ctl, pending_ip, pending_fp, scratch_ip, scratch_fp, iparams, fp
     return True
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def ring_write(ctl, ring, words, nframes):
-    """Producer: append ``nframes`` frames of ``words`` whole, or count them dropped."""
-    if ctl[C_TAP_ON] == 0 or nframes == 0:
-        return
-    cap = ctl[C_RING_FRAMES]
-    head = ctl[C_RING_HEAD]
-    fence()
-    tail = ctl[C_RING_TAIL]
-    if cap - (head - tail) < nframes:
-        ctl[C_RING_DROPPED] += nframes
-        return
-    nch = ring.shape[1]
-    slot = head % cap
-    for n in range(nframes):
-        for c in range(nch):
-            ring[slot, c] = words[n, c]
-        slot += 1
-        if slot == cap:
-            slot = 0
-    fence()
-    ctl[C_RING_HEAD] = head + nframes
+    """Producer (callback): append ``nframes`` frames of ``words`` to the tap ring whole, or count them dropped."""
+    head = R.reserve(ctl, C_TAP_ON, C_RING_HEAD, C_RING_TAIL, C_RING_DROPPED, C_RING_FRAMES, nframes)
+    if head >= 0:
+        R.copy_in(ring, head, words, nframes)
+        R.advance(ctl, C_RING_HEAD, head, nframes)
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def ring_read(ctl, ring, out):
-    """Consumer: copy up to ``out.shape[0]`` frames into ``out``; returns the count."""
-    head = ctl[C_RING_HEAD]
-    fence()
-    tail = ctl[C_RING_TAIL]
-    cap = ctl[C_RING_FRAMES]
-    n = min(head - tail, out.shape[0])
-    nch = ring.shape[1]
-    slot = tail % cap
-    for k in range(n):
-        for c in range(nch):
-            out[k, c] = ring[slot, c]
-        slot += 1
-        if slot == cap:
-            slot = 0
-    fence()
-    ctl[C_RING_TAIL] = tail + n
+    """Consumer (tap writer): copy up to ``out.shape[0]`` frames of the tap ring into ``out``; returns the count."""
+    tail, n = R.available(ctl, C_RING_HEAD, C_RING_TAIL, out.shape[0])
+    R.copy_out(ring, tail, out, 0, n)
+    R.advance(ctl, C_RING_TAIL, tail, n)
     return n
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def meter_ring_write(ctl, ring_x, ring_w, vq, words, nframes):
     """Producer (callback): append ``nframes`` frames of ``vq`` and ``words`` whole, or count them dropped."""
-    if ctl[C_METER_ON] == 0 or nframes == 0:
-        return
-    cap = ctl[C_MRING_FRAMES]
-    head = ctl[C_MRING_HEAD]
-    fence()
-    tail = ctl[C_MRING_TAIL]
-    if cap - (head - tail) < nframes:
-        ctl[C_MRING_DROPPED] += nframes
-        return
-    nch = ring_x.shape[1]
-    slot = head % cap
-    # At most two runs of whole rows (before and after the ring's end), each a plain copy loop.
-    first = min(nframes, cap - slot)
-    for n in range(first):
-        for c in range(nch):
-            ring_x[slot + n, c] = vq[n, c]
-            ring_w[slot + n, c] = words[n, c]
-    for n in range(first, nframes):
-        for c in range(nch):
-            ring_x[n - first, c] = vq[n, c]
-            ring_w[n - first, c] = words[n, c]
-    fence()
-    ctl[C_MRING_HEAD] = head + nframes
+    head = R.reserve(ctl, C_METER_ON, C_MRING_HEAD, C_MRING_TAIL, C_MRING_DROPPED, C_MRING_FRAMES, nframes)
+    if head >= 0:
+        R.copy_in(ring_x, head, vq, nframes)
+        R.copy_in(ring_w, head, words, nframes)
+        R.advance(ctl, C_MRING_HEAD, head, nframes)
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def meter_ring_read(ctl, ring_x, ring_w, out_x, out_w, start):
     """Consumer (meter thread): copy up to ``out_x.shape[0] - start`` frames into rows ``start..`` of the outputs.
 
     Returns the number of frames copied; the tail advances past them.
     """
-    head = ctl[C_MRING_HEAD]
-    fence()
-    tail = ctl[C_MRING_TAIL]
-    cap = ctl[C_MRING_FRAMES]
-    n = min(head - tail, out_x.shape[0] - start)
-    nch = ring_x.shape[1]
-    slot = tail % cap
-    for k in range(start, start + n):
-        for c in range(nch):
-            out_x[k, c] = ring_x[slot, c]
-            out_w[k, c] = ring_w[slot, c]
-        slot += 1
-        if slot == cap:
-            slot = 0
-    fence()
-    ctl[C_MRING_TAIL] = tail + n
+    tail, n = R.available(ctl, C_MRING_HEAD, C_MRING_TAIL, out_x.shape[0] - start)
+    R.copy_out(ring_x, tail, out_x, start, n)
+    R.copy_out(ring_w, tail, out_w, start, n)
+    R.advance(ctl, C_MRING_TAIL, tail, n)
     return n
+
+
+def ring_backlog(ctl, head_at, tail_at):
+    """Frames written to a ring and not yet read (Python side; for status)."""
+    return int(ctl[head_at] - ctl[tail_at])

@@ -26,12 +26,17 @@ kernel state, the dither clock and the source position carry on from where
 they stopped, so a file source resumes at the frame after the last one sent;
 the tap records each gap (:mod:`rtstage.live.tap`).
 
-Control surface (for the control and meter layers)
---------------------------------------------------
-:meth:`LiveEngine.set_settings` publishes new settings through the seqlock
-block and returns a sequence number; :meth:`LiveEngine.wait_applied` returns
-the sample index at which they took effect; :meth:`LiveEngine.status` returns
-a plain dict (counters, CPU load, uptime, settings, seed).
+Where the parts live
+--------------------
+This module holds the supervision (start, poll, recover, run, stop).  The
+preparation steps are in :mod:`rtstage.live.prepare`; the control surface
+(:meth:`LiveEngine.set_settings`, :meth:`LiveEngine.wait_applied`,
+:meth:`LiveEngine.last_applied`) in :mod:`rtstage.live.surface`; the status
+report and the status-flag windows in :mod:`rtstage.live.status`; the meter
+thread's start, stop and snapshot in :mod:`rtstage.live.metering`.  The
+settings, the container rule and the kernel counters belong to
+``LiveEngine.engine``, an :class:`rtstage.engine.Engine` whose state lives in
+the shared block.
 """
 
 import gc
@@ -40,23 +45,21 @@ import os
 import select
 import signal
 import subprocess
-import sys
-import tempfile
 import threading
 import time
-from dataclasses import replace
 
-import numpy as np
-
-from .. import kernel as K
-from ..engine import container_bits, encode_params
-from ..log import log
+from ..engine import Engine
 from ..errors import RtstageError
+from ..log import log
+from . import prepare as P
 from . import shared as S
-from .sources import check_source, gen_params, load_source_file, parse_source
-from .realtime import engine_realtime, start_notice, warm_meter_thread
+from .metering import LiveMeters, meter_snapshot
+from .realtime import start_notice
+from .sources import check_source, parse_source
+from .status import FlagWindows, live_status, read_flags
+from .surface import ControlSurface
 from .tap import TapWriter
-from .timing import check_port, port_status
+from .timing import check_port
 
 DEFAULT_BLOCKSIZE = 256
 """Default frames per callback (a power of two)."""
@@ -64,13 +67,11 @@ DEFAULT_CHANNELS = 2
 RETRY_DELAYS_S = (0.25, 0.5, 1.0, 2.0)
 """Reopen back-off; the last value repeats."""
 POLL_S = 0.02
-TAP_RING_S = 2.0
-"""Capacity of the tap ring, in seconds of audio."""
-METER_RING_S = 1.0
-"""Capacity of the meter ring, in seconds of audio."""
+TAP_RING_S = P.TAP_RING_S
+METER_RING_S = P.METER_RING_S
 
 
-class LiveEngine:
+class LiveEngine(ControlSurface):
     """A live requantizer on one PortAudio stream.
 
     Parameters
@@ -123,6 +124,9 @@ class LiveEngine:
     tap_writer = TapWriter
     """Factory of the tap writer, ``(path, block, samplerate, bits, info)``; set before :meth:`prepare`
     (the service layer puts its rotating writer here)."""
+    loudness_target = None
+    """Delivery loudness target (:class:`rtstage.meters.loudness.LoudnessTarget`) the meter snapshots are
+    checked against; set before :meth:`start`."""
 
     def __init__(self, settings, device=None, input_device=None, output_device=None, hostapi=None, samplerate=None,
                  blocksize=DEFAULT_BLOCKSIZE, channels=None, latency=None, source=None, loop=False, tap=None,
@@ -144,6 +148,8 @@ class LiveEngine:
         self.settle_s = float(settle_s)
         self.stall_s = stall_s
         self.block = None
+        self.engine = None
+        """The :class:`~rtstage.engine.Engine` (from :meth:`prepare`): settings, container, counters."""
         self.stream = None
         self.tap = None
         self.restarts = 0
@@ -154,7 +160,8 @@ class LiveEngine:
         self.state = "new"
         self._start_time = None
         self._logged_seq = 0
-        self._windows = []
+        self.flag_windows = FlagWindows(self.settle_s)
+        self.live_meters = None
         self._stop_event = threading.Event()
         self._last_frames = -1
         self._last_progress = None
@@ -164,6 +171,7 @@ class LiveEngine:
         self._shm_path = None
         self.rtp_out_options = dict(rtp_out) if rtp_out else None
         self.net_out = None
+        self._port_events = 0
 
     # --- prepare --------------------------------------------------------------------
     def prepare(self):
@@ -171,47 +179,30 @@ class LiveEngine:
         src = self.source_spec
         data = None
         if src is not None and src.kind == "file":
-            data, file_rate = load_source_file(src.path)
-            if self.samplerate is not None and int(self.samplerate) != file_rate:
-                raise RtstageError(f"source file {src.path} is at {file_rate} Hz, not {self.samplerate} Hz; "
-                                   "rtstage does not resample")
-            self.samplerate = file_rate
-            if self.channels is not None and int(self.channels) != data.shape[1]:
-                raise RtstageError(f"source file {src.path} has {data.shape[1]} channels, not {self.channels}")
-            self.channels = data.shape[1]
-            if data.shape[0] == 0:
-                raise RtstageError(f"source file {src.path} is empty")
-        self._choose_devices()
+            data, self.samplerate, self.channels = P.load_file_source(src, self.samplerate, self.channels)
+        probe = P.probe_devices(self.requested, duplex=src is None)
+        self.output_name, self.input_name, self.hostapi_name = probe["output_name"], probe["input_name"], probe["hostapi_name"]
         if self.samplerate is None:
-            self.samplerate = int(self._probe["default_samplerate"])
+            self.samplerate = int(probe["default_samplerate"])
         self.samplerate = int(self.samplerate)
         self.channels = int(self.channels or DEFAULT_CHANNELS)
         if src is not None and src.generated:
             check_source(src, self.samplerate)
-        self.settings = self.settings.resolved(self.samplerate)
-        self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
-        ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path or self.rtp_out_options else 0
-        src_frames = 0 if data is None else data.shape[0]
-        meter_frames = max(int(self.meter_ring_s * self.samplerate), 8 * self.blocksize) if self.meter_ring_s > 0 else 0
-        geometry = (self.channels, self.out_bits, self.blocksize, ring_frames, src_frames, meter_frames)
-        nbytes = S._layout(*geometry)[2]
-        shm_dir = "/dev/shm" if os.path.isdir("/dev/shm") else None
-        fd, self._shm_path = tempfile.mkstemp(prefix="rtstage-live-", dir=shm_dir)
-        os.ftruncate(fd, nbytes)
-        import mmap
-
-        self._memory = mmap.mmap(fd, nbytes)
-        os.close(fd)
-        self.block = S.SharedBlock(*geometry, buffer=self._memory)
+        # The one engine object model: settings resolved, validated and encoded here, once; its state moves
+        # into the shared block below, and later changes go out through the seqlock (set_settings).
+        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
+        self.settings = self.engine.settings
+        # The tap ring feeds the tap file and the RTP output alike.
+        geometry = P.geometry(self.channels, self.engine.width, self.blocksize, self.samplerate,
+                              self.tap_path or self.rtp_out_options, 0 if data is None else data.shape[0],
+                              self.meter_ring_s)
+        self.block, self._memory, self._shm_path = P.shared_block(geometry)
         if data is not None:
             self.block.source[:] = data
-        self._configure(self.block)
-        kst = self.block.kernel
-        encode_params(self.settings, self.samplerate, self.out_shift, kst.iparams, kst.fparams)
-        kst.reset(0)
-        self._new_ip = np.zeros(K.IP_LEN, dtype=np.int64)
-        self._new_fp = np.zeros(K.FP_LEN, dtype=np.float64)
-        self._warm()
+        P.configure_input(self.block, self.samplerate, src, self.loop)
+        self.engine.use_memory(self.block.kernel, publish=self._publish_params)
+        P.warm(self.channels, self.engine.width, self.blocksize)
+        self.live_meters = LiveMeters(self.block, self.engine, self.samplerate)
         info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
                 "source": src.describe() if src else "input"}
         if self.rtp_out_options:
@@ -226,65 +217,19 @@ class LiveEngine:
         return self
 
     @property
+    def out_bits(self):
+        """Width of the output words: 16 (int16) or 32 (left-justified int32)."""
+        return self.engine.width
+
+    @property
     def out_shift(self):
         """Left shift from the word to its container."""
-        return (16 if self.out_bits == 16 else 32) - self.settings.bits
-
-    def _configure(self, block):
-        ctl = block.ctl
-        ctl[S.C_SAMPLERATE] = self.samplerate
-        src = self.source_spec
-        if src is None:
-            ctl[S.C_IN_MODE] = S.IN_DEVICE
-        elif src.kind == "file":
-            ctl[S.C_IN_MODE] = S.IN_FILE
-            ctl[S.C_SRC_LOOP] = 1 if self.loop else 0
-        else:
-            ctl[S.C_IN_MODE] = S.IN_GENERATOR
-            kind, freq_hz, amplitude, seed_bits = gen_params(src, self.samplerate)
-            ctl[S.C_GEN_KIND] = kind
-            ctl[S.C_GEN_SEED] = seed_bits
-            block.gen_fp[0] = freq_hz
-            block.gen_fp[1] = amplitude
-
-    def _worker_command(self, *args):
-        return [sys.executable, "-m", "rtstage.live.worker", *args]
-
-    def _choose_devices(self):
-        """Resolve the device specs in a probe process (PortAudio never runs in this process)."""
-        req = self.requested
-        cmd = self._worker_command("probe", "--duplex", "1" if self.source_spec is None else "0")
-        for key in ("device", "input_device", "output_device", "hostapi"):
-            if req[key] is not None:
-                cmd += ["--" + key.replace("_", "-"), str(req[key])]
-        result = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, timeout=60)
-        try:
-            reply = json.loads(result.stdout.strip().splitlines()[-1])
-        except (IndexError, ValueError):
-            raise RtstageError(f"cannot list audio devices: {result.stderr.strip()[-300:]}") from None
-        if not reply["ok"]:
-            raise RtstageError(reply["error"])
-        self._probe = reply
-        self.output_name, self.input_name, self.hostapi_name = reply["output_name"], reply["input_name"], reply["hostapi_name"]
-        for warning in reply["warnings"]:
-            log(f"warning: {warning}; output words may be changed before they reach the hardware")
-        if reply["note"]:
-            log(f"note: {reply['note']}")
-
-    def _warm(self):
-        """Compile (or load from the cache) the callback and run the Python-side helpers once with the real types."""
-        from .cfunc import build_callback
-
-        build_callback()
-        scratch = S.SharedBlock(self.channels, self.out_bits, self.blocksize, 4 * self.blocksize)
-        S.publish_params(scratch.ctl, scratch.pending_ip, scratch.pending_fp, self._new_ip, self._new_fp)
-        S.applied(scratch.ctl)
-        S.ring_read(scratch.ctl, scratch.ring, np.zeros((8, self.channels), dtype=scratch.out_dtype))
+        return self.engine.out_shift
 
     # --- run ------------------------------------------------------------------------
     def _open(self, timeout_s=60.0):
         """Start a stream worker and wait until its stream runs; raises RtstageError when it cannot open."""
-        cmd = self._worker_command(
+        cmd = P.worker_command(
             "stream", "--shm", self._shm_path, "--geometry", ",".join(str(v) for v in self.block.geometry),
             "--samplerate", str(self.samplerate), "--blocksize", str(self.blocksize),
             "--output-name", self.output_name, "--hostapi-name", self.hostapi_name, "--callback", self.callback_mode)
@@ -315,7 +260,7 @@ class LiveEngine:
         self.worker = proc
         self._worker_reply = reply  # carries the worker's realtime report (rtstage.live.realtime)
         now = time.monotonic()
-        self._windows.append({"start": now, "at_start": self._flags(), "at_settle": None})
+        self.flag_windows.opened(now, read_flags(self.block))
         self._last_progress = now
         self._last_frames = self.block.counter(S.C_FRAMES)
 
@@ -340,7 +285,7 @@ class LiveEngine:
             self.tap.start()
         if self.net_out is not None:
             self.net_out.start()
-        self._start_meters()
+        self.live_meters.start(loudness_target=self.loudness_target)
         self._open()
         self._start_time = time.monotonic()
         self.state = "running"
@@ -351,9 +296,6 @@ class LiveEngine:
         gc.collect()
         gc.freeze()
         return self
-
-    def _flags(self):
-        return {name: self.block.counter(idx) for name, idx in S.FLAG_COUNTERS}
 
     @property
     def finished(self):
@@ -367,10 +309,8 @@ class LiveEngine:
         """
         self._log_applied()
         now = time.monotonic()
-        window = self._windows[-1] if self._windows else None
-        if window is not None and window["at_settle"] is None and now - window["start"] >= self.settle_s:
-            window["at_settle"] = self._flags()
-        self._port_events = check_port(self, getattr(self, "_port_events", 0))  # missing/repeated periods
+        self.flag_windows.tick(now, self.block)
+        self._port_events = check_port(self, self._port_events)  # missing/repeated periods
         if self.finished:
             return False
         stream_alive = self.worker is not None and self.worker.poll() is None
@@ -380,7 +320,7 @@ class LiveEngine:
             self._last_progress = now
             load = self.block.counter(S.C_CPU_LOAD_PPM) * 1e-6
             self.cpu_load = load
-            if window is not None and window["at_settle"] is not None:
+            if self.flag_windows.settled:
                 self.cpu_load_max = max(self.cpu_load_max, load)
         stall_s = self.stall_s if self.stall_s is not None else max(0.5, 32 * self.blocksize / self.samplerate)
         if stream_alive and now - self._last_progress <= stall_s:
@@ -408,7 +348,7 @@ class LiveEngine:
                 log(f"retry {attempt}: {exc}")
                 continue
             gap_s = time.monotonic() - lost_at
-            frame = int(self.block.kernel.clock[K.CLK_FRAME])
+            frame = self.engine.frame
             gap = {"tap_frame": self.block.counter(S.C_RING_HEAD), "engine_frame": frame, "gap_s": round(gap_s, 6),
                    "reason": reason}
             self.gaps.append(gap)
@@ -420,13 +360,6 @@ class LiveEngine:
             log(f"resumed on '{self.output_name}' after {gap_s:.2f} s (attempt {attempt}); "
                 f"discontinuity at sample {frame} recorded")
             return
-
-    def _log_applied(self):
-        seq, frame = S.applied(self.block.ctl)
-        if seq != self._logged_seq and seq != 0:
-            self._logged_seq = seq
-            self.applied_log.append({"seq": int(seq), "frame": int(frame)})
-            log(f"settings #{seq // 2} took effect at sample {frame}")
 
     def run(self, duration_s=None, install_signals=True):
         """Start (if needed), supervise until the source ends, ``duration_s`` passes or SIGINT/SIGTERM; then stop.
@@ -486,13 +419,13 @@ class LiveEngine:
             self.worker = None
         if self.state == "running":
             self._log_applied()
-            self._port_events = check_port(self, getattr(self, "_port_events", 0))
+            self._port_events = check_port(self, self._port_events)
         self.state = "stopped"
         tap_summary = self.tap.close() if self.tap is not None else None
         self.tap = None
         if self.net_out is not None:
             tap_summary = self.net_out.close()
-        meter_final = self._stop_meters()
+        meter_final = self.meters() if self.live_meters is not None and self.live_meters.stop() else None
         status = self.status()
         if tap_summary is not None:
             status["tap"] = tap_summary
@@ -508,129 +441,10 @@ class LiveEngine:
             self._shm_path = None
         return status
 
-    # --- control surface ------------------------------------------------------------
-    def set_settings(self, settings):
-        """Publish new settings; they take effect at the next block boundary.
-
-        The seed is kept from the start, and the word length may not change
-        the output container.  Gain changes ramp over
-        :data:`rtstage.engine.GAIN_RAMP_SECONDS`.
-
-        Returns
-        -------
-        int
-            Sequence number to pass to :meth:`wait_applied`.
-        """
-        settings = replace(settings, seed=self.settings.seed).resolved(self.samplerate)
-        if (16 if container_bits(settings.bits) == 16 else 32) != self.out_bits:
-            raise RtstageError(f"bits={settings.bits} does not fit this stream's {self.out_bits}-bit output")
-        out_shift = (16 if self.out_bits == 16 else 32) - settings.bits
-        encode_params(settings, self.samplerate, out_shift, self._new_ip, self._new_fp)
-        seq = S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, self._new_ip, self._new_fp)
-        self.settings = settings
-        return int(seq)
-
-    def wait_applied(self, seq, timeout_s=2.0):
-        """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
-        deadline = time.monotonic() + timeout_s
-        while True:
-            applied_seq, frame = S.applied(self.block.ctl)
-            if applied_seq >= seq:
-                self._log_applied()
-                return int(frame)
-            if time.monotonic() >= deadline:
-                return None
-            time.sleep(0.001)
-
+    # --- status and meters (rtstage.live.status, rtstage.live.metering) ---------------------
     def status(self):
         """Plain-data status: counters, CPU load, uptime, settings, seed (safe to call from any thread)."""
-        b = self.block
-        flags = self._flags() if b is not None else {}
-        after = dict(flags)
-        for w in self._windows:
-            end = w["at_settle"] if w["at_settle"] is not None else flags
-            for name in after:
-                after[name] -= end[name] - w["at_start"][name]
-        uptime = 0.0 if self._start_time is None else time.monotonic() - self._start_time
-        result = {
-            "state": self.state,
-            "uptime_s": round(uptime, 3),
-            "samplerate": self.samplerate,
-            "blocksize": self.blocksize,
-            "channels": self.channels,
-            "callback": self.callback_mode,
-            "device": {"output": getattr(self, "output_name", None), "input": getattr(self, "input_name", None),
-                       "hostapi": getattr(self, "hostapi_name", None)},
-            "source": self.source_spec.describe() if self.source_spec else "input",
-            "settings": self.settings.to_dict() if hasattr(self.settings, "to_dict") else None,
-            "seed": getattr(self.settings, "seed", None),
-            "blocks": b.counter(S.C_CALLBACKS) if b else 0,
-            "frames": b.counter(S.C_FRAMES) if b else 0,
-            "engine_frame": int(b.kernel.clock[K.CLK_FRAME]) if b else 0,
-            "xruns": flags,
-            "xruns_after_settle": after,
-            "settle_s": self.settle_s,
-            "cpu_load": round(self.cpu_load, 6),
-            "cpu_load_max": round(self.cpu_load_max, 6),
-            "restarts": self.restarts,
-            "discontinuities": len(self.gaps),
-            "gaps": list(self.gaps),
-            "source_done": bool(b.counter(S.C_SRC_DONE)) if b else False,
-            "source_loops": b.counter(S.C_LOOPS) if b else 0,
-            "tap_frames": b.counter(S.C_RING_HEAD) if b else 0,
-            "tap_dropped_frames": b.counter(S.C_RING_DROPPED) if b else 0,
-            "clipped": b.kernel.counts[:, K.CNT_CLIPPED].tolist() if b else [],
-            "nonfinite": b.kernel.counts[:, K.CNT_NONFINITE].tolist() if b else [],
-        "auto_muted": (b.kernel.counts[:, K.CNT_AM_MUTED] != 0).tolist() if b else [],
-        "auto_muted_frames": b.kernel.counts[:, K.CNT_AM_FRAMES].tolist() if b else [],
-            "settings_applied": list(self.applied_log),
-            "realtime": engine_realtime(self),
-            "port": port_status(b.ctl, self.samplerate, self.blocksize, getattr(self, "port_late", None)) if b else {},
-        }
-        if self.net_out is not None:
-            result["streams"] = {"rtp_out": self.net_out.stats()}
-        return result
-
-    # --- meters (rtstage.live.meterthread) --------------------------------------------
-    def _start_meters(self):
-        """Start the meter thread on the meter ring (once; it carries on across stream restarts)."""
-        if getattr(self, "meter_thread", None) is not None or self.block.counter(S.C_METER_ON) == 0:
-            return
-        from ..meters import MeterBank
-        from .meterthread import MeterThread
-
-        shaper = self.settings.shaper
-        # Compile (or load from the cache) every meter kernel now, with the real types: compiling
-        # them in the meter thread's first update would hold the GIL for seconds while audio runs,
-        # starving the control and MIDI threads.
-        s = self.settings
-        width = 16 if self.block.out_dtype == np.int16 else 32
-        warm = MeterBank(self.channels, self.samplerate, s.bits, shaper.coefs, s.dither, s.dither_scale,
-                         out_shift=width - s.bits, shaper_id=shaper.id)
-        frames = 4096
-        warm.update(np.zeros((frames, self.channels)), np.zeros((frames, self.channels), dtype=self.block.out_dtype))
-        warm.report()
-        self._meter_shapers = {tuple(shaper.coefs): shaper.id}
-        warm_meter_thread(self.block, self.samplerate, MeterThread,  # the ring read and snapshot path too
-                          loudness_target=getattr(self, "loudness_target", None))
-        self.meter_thread = MeterThread(self.block, self.samplerate, shaper_name=self._meter_shaper_name,
-                                        loudness_target=getattr(self, "loudness_target", None)).start()
-
-    def _meter_shaper_name(self, coefs):
-        shaper = self.settings.shaper
-        if hasattr(shaper, "coefs"):
-            self._meter_shapers.setdefault(tuple(shaper.coefs), shaper.id)
-        return self._meter_shapers.get(tuple(coefs))
-
-    def _stop_meters(self):
-        """Stop the meter thread after a last drain; returns :meth:`meters` (None without meters)."""
-        thread = getattr(self, "meter_thread", None)
-        if thread is None:
-            return None
-        thread.stop()
-        if thread.error is not None:
-            log(f"meter thread failed: {thread.error}")
-        return self.meters()
+        return live_status(self)
 
     def meters(self):
         """The latest meter snapshot with engine health (safe to call from any thread).
@@ -648,22 +462,10 @@ class LiveEngine:
             snapshot, or without meters, only ``frame`` (0), ``peak_dbfs``,
             ``rms_dbfs`` (None), ``clipped``, ``nonfinite`` and the health.
         """
-        thread = getattr(self, "meter_thread", None)
-        snap = thread.latest() if thread is not None else None
-        status = self.status()
-        if snap is None:
-            snap = {"frame": 0, "peak_dbfs": [None] * (self.channels or 0), "rms_dbfs": [None] * (self.channels or 0),
-                    "clipped": status["clipped"], "nonfinite": status["nonfinite"]}
-        out = dict(snap)
-        out.update({
-            "state": status["state"],
-            "xruns": status["xruns"]["flagged_callbacks"],
-            "xruns_after_settle": status["xruns_after_settle"]["flagged_callbacks"],
-            "cpu_load": status["cpu_load"],
-            "cpu_load_max": status["cpu_load_max"],
-            "restarts": status["restarts"],
-            "auto_muted": status["auto_muted"],
-        })
-        if "streams" in status:
-            out["streams"] = status["streams"]
-        return out
+        snap = self.live_meters.latest() if self.live_meters is not None else None
+        return meter_snapshot(snap, self.status(), self.channels)
+
+    @property
+    def meter_thread(self):
+        """The running :class:`~rtstage.live.meterthread.MeterThread`, or None (without meters, or not started)."""
+        return self.live_meters.thread if self.live_meters is not None else None

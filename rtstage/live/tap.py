@@ -20,13 +20,13 @@ file itself is never padded or shifted.
 
 import json
 import os
-import threading
 
 import numpy as np
 import soundfile as sf
 
 from ..errors import RtstageError
-from .shared import C_RING_DROPPED, C_RING_HEAD, C_RING_TAIL, ring_read
+from ..threads import StoppableThread
+from .shared import C_RING_DROPPED, C_RING_HEAD, C_RING_TAIL, ring_backlog, ring_read
 
 CHUNK_FRAMES = 8192
 POLL_S = 0.02
@@ -73,13 +73,12 @@ class TapWriter:
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
             raise RtstageError(f"cannot open tap file {path}: {exc}") from None
         self._chunk = np.zeros((CHUNK_FRAMES, block.nchannels), dtype=block.out_dtype)
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="rtstage-tap", daemon=True)
+        self._worker = StoppableThread(self._run, "rtstage-tap")
         self.error = None
 
     def start(self):
         """Start draining."""
-        self._thread.start()
+        self._worker.start()
 
     def _drain(self):
         while True:
@@ -91,7 +90,7 @@ class TapWriter:
 
     def _run(self):
         try:
-            while not self._stop.wait(POLL_S):
+            while not self._worker.wait(POLL_S):
                 self._drain()
             self._drain()
         except Exception as exc:  # reported by close(); the audio side never waits for this thread
@@ -108,15 +107,13 @@ class TapWriter:
 
     def close(self):
         """Drain what is left, close the file and write the sidecar; returns a summary dict."""
-        self._stop.set()
-        if self._thread.is_alive():
-            self._thread.join()
+        self._worker.stop()
         self._file.close()
         summary = {
             "path": self.path,
             "frames": int(self.frames_written),
             "dropped_frames": int(self.block.ctl[C_RING_DROPPED]),
-            "ring_backlog_frames": int(self.block.ctl[C_RING_HEAD] - self.block.ctl[C_RING_TAIL]),
+            "ring_backlog_frames": ring_backlog(self.block.ctl, C_RING_HEAD, C_RING_TAIL),
             "gaps": self.gaps,
         }
         with open(self._sidecar_path, "w") as f:

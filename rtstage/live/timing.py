@@ -134,7 +134,7 @@ CLOCK_MONOTONIC = 1
 _clock_gettime = types.ExternalFunction("clock_gettime", types.intc(types.intc, types.voidptr))
 
 
-@njit(nogil=True, inline="always")
+@njit(nogil=True, inline="always", error_model="numpy")
 def _now_ns(ctl_addr, ctl):
     _clock_gettime(CLOCK_MONOTONIC, address_to_voidptr(ctl_addr + 8 * C_TS_SEC))
     return ctl[C_TS_SEC] * 1000000000 + ctl[C_TS_NSEC]
@@ -154,7 +154,7 @@ def _call_u32(typingctx, fn_address, arg):
     return sig, codegen
 
 
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head):
     """Start of a callback: the cycle check, then the start time (ns) for :func:`cycle_end`."""
     ctl = carray(address_to_voidptr(ctl_addr), (C_END,), np.int64)
@@ -210,7 +210,7 @@ def cycle_begin(ctl_addr, time_info_addr, frames_before, engine_frame, tap_head)
     return t0
 
 
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def cycle_end(ctl_addr, t0_ns):
     """End of a callback: record its duration."""
     ctl = carray(address_to_voidptr(ctl_addr), (C_END,), np.int64)

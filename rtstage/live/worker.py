@@ -115,7 +115,7 @@ def stream(args):
     scratch.ctl[S.C_TAP_ON] = 1
     scratch.kernel.iparams[:] = block.kernel.iparams
     scratch.kernel.fparams[:] = block.kernel.fparams
-    width = 2 if out_bits == 16 else 4
+    width = np.dtype(block.out_dtype).itemsize
     out = np.zeros(max_frames * nch * width, dtype=np.uint8)
     inp = np.zeros(max_frames * nch, dtype=np.float32)
     for _ in range(2):

@@ -195,11 +195,12 @@ def _shared_block(engine, max_frames, meter_frames):
     ``applied``, counters) and the meters (:class:`rtstage.live.meterthread.MeterThread`:
     the meter ring) then drive and read this engine exactly as they do a live one.
     """
-    out_bits = 16 if engine.dtype == np.int16 else 32
-    block = S.SharedBlock(engine.nchannels, out_bits, max_frames, 0, 0, meter_frames)
-    for dst, src in zip(block.kernel.arrays(), engine.state.arrays()):
-        dst[...] = src
-    engine.state = block.kernel
+    block = S.SharedBlock(engine.nchannels, engine.width, max_frames, 0, 0, meter_frames)
+
+    def publish(iparams, fparams):
+        return S.publish_params(block.ctl, block.pending_ip, block.pending_fp, iparams, fparams)
+
+    engine.use_memory(block.kernel, publish=publish)  # the one engine object model, as in the live engine
     block.pending_ip[:] = block.kernel.iparams
     block.pending_fp[:] = block.kernel.fparams
     return block
@@ -352,7 +353,7 @@ class NetEngine:
             check_source(src, int(self.samplerate))
         self.samplerate = int(self.samplerate)
         self.channels = int(self.channels)
-        self.engine = Engine(self.settings, self.channels, self.samplerate)
+        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
         self.settings = self.engine.settings
         rate = self.samplerate
         if self.rtp_out_options is not None:
@@ -584,30 +585,33 @@ class NetEngine:
 
     # --- control surface (rtstage.control.live_target.LiveTarget) -------------------------
     def set_settings(self, settings):
-        """Publish new settings; the clocked thread takes them at its next block.  Returns the sequence number."""
-        from dataclasses import replace
+        """Publish new settings; the clocked thread takes them at its next block.  Returns the sequence number.
 
-        from ..engine import container_bits, encode_params
-
-        settings = replace(settings, seed=self.settings.seed).resolved()
-        if container_bits(settings.bits) != container_bits(self.settings.bits):
-            raise RtstageError(f"bits={settings.bits} does not fit this stream's {self.engine.container}-bit output")
-        width = 16 if self.engine.container == 16 else 32
-        new_ip = np.zeros_like(self.block.pending_ip)
-        new_fp = np.zeros_like(self.block.pending_fp)
-        encode_params(settings, self.samplerate, width - settings.bits, new_ip, new_fp)
-        seq = S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, new_ip, new_fp)
-        self.settings = settings
-        self.engine.settings = settings
+        The engine (:meth:`rtstage.engine.Engine.apply`) resolves and checks them and publishes through the
+        shared block's seqlock.
+        """
+        seq = self.engine.apply(settings)
+        self.settings = self.engine.settings
         return int(seq)
+
+    def last_applied(self):
+        """(sequence number, sample index) of the settings the clocked thread took last."""
+        seq, frame = S.applied(self.block.ctl)
+        return int(seq), int(frame)
+
+    def block_waiter(self):
+        """A :class:`~rtstage.live.handoff.BlockWaiter` on this engine's blocks (short sleeps: no callback stamps)."""
+        from ..live.handoff import BlockWaiter
+
+        return BlockWaiter(self.block.ctl, self.samplerate, self.blocksize)
 
     def wait_applied(self, seq, timeout_s=2.0):
         """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
         deadline = time.monotonic() + timeout_s
         while True:
-            applied_seq, frame = S.applied(self.block.ctl)
+            applied_seq, frame = self.last_applied()
             if applied_seq >= seq:
-                return int(frame)
+                return frame
             if time.monotonic() >= deadline:
                 return None
             time.sleep(0.001)

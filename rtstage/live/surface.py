@@ -1,0 +1,68 @@
+"""The live engine's control surface: new settings out through the seqlock, their sample index back.
+
+:class:`ControlSurface` is the part of :class:`~rtstage.live.supervisor.LiveEngine`
+the control layer (:class:`~rtstage.control.live_target.LiveTarget`) uses.
+Settings go through the engine object (:meth:`rtstage.engine.Engine.apply`:
+resolved, container checked, encoded), whose publish hook writes the seqlock
+block; the callback takes them at its next block boundary and records the
+sample index (:func:`rtstage.live.shared.applied`).
+"""
+
+import time
+
+from ..log import log
+from . import shared as S
+
+
+class ControlSurface:
+    """Mixin of :class:`~rtstage.live.supervisor.LiveEngine`: needs ``engine``, ``block``, ``settings``."""
+
+    def _publish_params(self, iparams, fparams):
+        """The engine's publish hook: the seqlock write into the shared block; returns the sequence number."""
+        return S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, iparams, fparams)
+
+    def set_settings(self, settings):
+        """Publish new settings; they take effect at the next block boundary.
+
+        The seed is kept from the start, and the word length may not change
+        the output container.  Gain changes ramp over
+        :data:`rtstage.engine.GAIN_RAMP_SECONDS`.
+
+        Returns
+        -------
+        int
+            Sequence number to pass to :meth:`wait_applied`.
+        """
+        seq = self.engine.apply(settings)
+        self.settings = self.engine.settings
+        return seq
+
+    def last_applied(self):
+        """(sequence number, sample index) of the settings the callback took last."""
+        seq, frame = S.applied(self.block.ctl)
+        return int(seq), int(frame)
+
+    def block_waiter(self):
+        """A :class:`~rtstage.live.handoff.BlockWaiter` on this engine's callbacks (wakes just after the next one)."""
+        from .handoff import BlockWaiter
+
+        return BlockWaiter(self.block.ctl, self.samplerate, self.blocksize)
+
+    def wait_applied(self, seq, timeout_s=2.0):
+        """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
+        deadline = time.monotonic() + timeout_s
+        while True:
+            applied_seq, frame = self.last_applied()
+            if applied_seq >= seq:
+                self._log_applied()
+                return frame
+            if time.monotonic() >= deadline:
+                return None
+            time.sleep(0.001)
+
+    def _log_applied(self):
+        seq, frame = self.last_applied()
+        if seq != self._logged_seq and seq != 0:
+            self._logged_seq = seq
+            self.applied_log.append({"seq": seq, "frame": frame})
+            log(f"settings #{seq // 2} took effect at sample {frame}")
