@@ -115,7 +115,7 @@ CASES = [
     Case("render-zero-scale-shaper", R("{d}/in.wav", "{d}/out.wav", "--dither-scale", "0", "--shaper", "lvw-e5"), 2,
          "without dither", W),
     Case("render-hp-dither-in-shaper", R("{d}/in.wav", "{d}/out.wav", "--dither", "tpdf-hp", "--shaper", "diff1"), 2,
-         "non-i.i.d.", W),
+         "not i.i.d.", W),
     Case("render-unsafe-accepted", R("{d}/in.wav", "{d}/out.wav", "--dither", "none", "--shaper", "diff2",
                                      "--accept-unsafe-shaping", "--seed", "3"), 0, "jaes 2004", W,
          accepted=("out.wav",), lines=-1),
