@@ -86,7 +86,7 @@ def parse_request(line):
 
 
 def _log_warning(message):
-    from ..engine import log
+    from ..log import log
 
     log(message)
 
