@@ -288,7 +288,7 @@ class ControlWiring:
         """Status fields of the control layer (for the final status)."""
         out = {}
         if self.target is not None:
-            out["control_changes_applied"] = len(self.target.applied)
+            out["control_changes_applied"] = getattr(self.target, "applied_count", len(self.target.applied))
         if self.args.automation_log:
             out["automation_log"] = self.args.automation_log
         if self.osc_status is not None:

@@ -426,6 +426,7 @@ class LiveEngine:
         if seq != self._logged_seq and seq != 0:
             self._logged_seq = seq
             self.applied_log.append({"seq": int(seq), "frame": int(frame)})
+            del self.applied_log[:-1000]  # bounded for long runs; the automation log keeps every change
             log(f"settings #{seq // 2} took effect at sample {frame}")
 
     def run(self, duration_s=None, install_signals=True):
