@@ -35,6 +35,9 @@ def register(subparsers):
                      help=f"frames per callback, fixed (default {DEFAULT_BLOCKSIZE})")
     dev.add_argument("--latency", type=positive_float, help="suggested device latency in seconds")
     dev.add_argument("--channels", type=int, help="channel count (default: the source file's, else 2)")
+    dev.add_argument("--packed24", action="store_true",
+                     help="send 17..24-bit words as packed 3-byte samples (PortAudio int24) instead of "
+                     "left-justified in 32 bits, for devices that take that format")
     dev.add_argument("--callback", choices=("compiled", "python"), default="compiled",
                      help="callback mode; 'python' is a diagnostic fallback, never real-time safe (default compiled)")
     add_engine_options(run)
@@ -108,6 +111,7 @@ def run_command(args):
         settle_s=args.settle, rtp_out=rtp_out,
     )
     configure_engine(engine, args)
+    engine.packed24 = bool(getattr(args, "packed24", False))
     if args.loudness_target:
         from ..meters.loudness import parse_target
 
@@ -288,7 +292,7 @@ class ControlWiring:
         """Status fields of the control layer (for the final status)."""
         out = {}
         if self.target is not None:
-            out["control_changes_applied"] = len(self.target.applied)
+            out["control_changes_applied"] = getattr(self.target, "applied_count", len(self.target.applied))
         if self.args.automation_log:
             out["automation_log"] = self.args.automation_log
         if self.osc_status is not None:

@@ -118,6 +118,10 @@ class LiveEngine:
         sent from the callback.
     """
 
+    packed24 = False
+    """Send 17..24-bit words as packed three-byte samples (PortAudio int24; :mod:`rtstage.live.packing`); set
+    before :meth:`prepare`."""
+
     meter_ring_s = METER_RING_S
     """Meter ring capacity in seconds; set to 0 before :meth:`prepare` to run without meters."""
     tap_writer = TapWriter
@@ -190,6 +194,8 @@ class LiveEngine:
             check_source(src, self.samplerate)
         self.settings = self.settings.resolved(self.samplerate)
         self.out_bits = 16 if container_bits(self.settings.bits) == 16 else 32
+        if self.packed24 and (self.out_bits != 32 or self.callback_mode != "compiled"):
+            raise RtstageError("packed 24-bit output needs a 17..24-bit word and the compiled callback")
         ring_frames = max(int(TAP_RING_S * self.samplerate), 4 * self.blocksize) if self.tap_path or self.rtp_out_options else 0
         src_frames = 0 if data is None else data.shape[0]
         meter_frames = max(int(self.meter_ring_s * self.samplerate), 8 * self.blocksize) if self.meter_ring_s > 0 else 0
@@ -294,6 +300,8 @@ class LiveEngine:
             cmd += ["--latency", str(self.latency)]
         if self.worker_load_thread:
             cmd += ["--load-thread"]
+        if self.packed24:
+            cmd += ["--packed24"]
         proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
         deadline = time.monotonic() + timeout_s
         line = ""
@@ -426,6 +434,7 @@ class LiveEngine:
         if seq != self._logged_seq and seq != 0:
             self._logged_seq = seq
             self.applied_log.append({"seq": int(seq), "frame": int(frame)})
+            del self.applied_log[:-1000]  # bounded for long runs; the automation log keeps every change
             log(f"settings #{seq // 2} took effect at sample {frame}")
 
     def run(self, duration_s=None, install_signals=True):

@@ -323,7 +323,7 @@ class ServiceWiring:
             "restarts": st["restarts"], "gaps": st["discontinuities"],
             "gap_s": sum(g["gap_s"] for g in st["gaps"]),
             "cpu_load": st["cpu_load"], "cpu_load_max": st["cpu_load_max"],
-            "control_changes": len(target.applied) if target is not None else 0,
+            "control_changes": getattr(target, "applied_count", len(target.applied)) if target is not None else 0,
             "reloads": self.reloads,
             "tap_dropped_frames": st["tap_dropped_frames"],
             "meter_dropped_frames": eng.block.counter(S.C_MRING_DROPPED),
