@@ -83,10 +83,9 @@ def run_command(args):
 
     in_journal = use_journal()
     hold_reload_signal()
-    feed = load_run_feed(args)
+    feed = load_run_feed(args)  # first: it resolves the options a feed may set (until then they are unset)
     if args.source is None and args.loop:
         raise RtstageError("--loop needs a --source file")
-    feed = load_run_feed(args)  # first: it resolves the options a feed may set (until then they are unset)
     if args.blocksize < 1 or args.blocksize > 1 << 16:
         raise RtstageError(f"blocksize must be between 1 and 65536 frames, got {args.blocksize}")
     if not 0 <= args.control_port < 65536:
@@ -175,9 +174,13 @@ def check_run_outputs(args):
         source_file = args.source
         open_input(source_file)[0].close()
     inputs = [source_file, getattr(args, "feed", None), *input_files_of(args)]
+    from ..service.runner import rotated_outputs
+
     plan = OutputPlan("running the live engine", inputs=inputs, overwrite=args.overwrite)
-    for path, what in ((args.tap, "--tap"), (args.tap and sidecar_path(args.tap), "--tap gaps sidecar"),
-                       (args.automation_log, "--automation-log"), (args.status_file, "--status-file"),
+    segments = rotated_outputs(args)  # with rotation the tap and log are written as segments instead
+    plain = [] if segments else [(args.tap, "--tap"), (args.tap and sidecar_path(args.tap), "--tap gaps sidecar"),
+                                 (args.automation_log, "--automation-log")]
+    for path, what in (*plain, *segments, (args.status_file, "--status-file"),
                        (getattr(args, "rtp_sdp", None), "--rtp-sdp")):
         if path:
             plan.add_file(path, what)
