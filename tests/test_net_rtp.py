@@ -301,7 +301,6 @@ def test_sdp_source_reads_the_stream_format(tmp_path):
 
 def test_tai_clock_timestamps_follow_the_tai_clock():
     # RFC 7273 a=mediaclk:direct=OFFSET: the timestamp of the sample due at clock time t is OFFSET + t·rate (mod 2^32).
-
     sink = PacketCollector()
     engine = NetEngine(EngineSettings(bits=16, seed=1), parse_source("silence"), samplerate=48000, channels=1,
                        rtp_out={"host": LOOPBACK, "port": sink.port}, clock="tai")
