@@ -54,7 +54,7 @@ class Wiring:
         ports = self.client.get_ports(client + ":", is_audio=True, is_input=is_input, is_output=not is_input)
         return sorted((p for p in ports if p.name.split(":")[0] == client), key=lambda p: p.name)
 
-    def wait_new_client(self, known, timeout_s=180, proc=None, err_path=None, channels=2):
+    def wait_new_client(self, known, timeout_s=300, proc=None, err_path=None, channels=2):
         """Name of a new client once all its ports (``channels`` in and out) are registered."""
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:
@@ -94,7 +94,7 @@ def _linktest(server, tmp_path, *extra):
 
 def _finish(proc, tmp_path):
     try:
-        out, _ = proc.communicate(timeout=180)
+        out, _ = proc.communicate(timeout=300)
     finally:
         if proc.poll() is None:
             proc.kill()
@@ -136,10 +136,10 @@ def test_through_a_second_rtstage_at_16_bits_tpdf(server, tmp_path):
             middle = subprocess.Popen(
                 [sys.executable, "-m", "rtstage", "run", "--device", "system", "--channels", "2", "--samplerate", str(SR),
                  "--blocksize", str(PERIOD), "--bits", "16", "--dither", "tpdf", "--seed", "31", "--quiet",
-                 "--control-port", "0", "--duration", "120", "--status-file", str(tmp_path / "middle.json")],
+                 "--control-port", "0", "--duration", "600", "--status-file", str(tmp_path / "middle.json")],
                 env=server.client_env(), cwd=ROOT, stdout=subprocess.DEVNULL, stderr=err)
         box = wiring.wait_new_client(known, proc=middle, err_path=middle_err)
-        deadline = time.monotonic() + 120
+        deadline = time.monotonic() + 300  # a cold numba cache compiles the engine's callback first
         while "rtstage: running:" not in middle_err.read_text():
             assert middle.poll() is None and time.monotonic() < deadline, middle_err.read_text()
             time.sleep(0.05)
