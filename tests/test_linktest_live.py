@@ -115,14 +115,22 @@ def test_direct_connection_is_transparent(server, tmp_path, bits):
         code, out, err = _finish(proc, tmp_path)
     finally:
         wiring.close()
-    assert code == 0, out + err
+    assert code in (0, 1), out + err
     report = json.load(open(report_path))
-    assert report["transparent"] is True and out.startswith("TRANSPARENT")
+    # Xruns of the graph that PortAudio reported to the stream: on a loaded machine a late cycle can garble
+    # a block; the analyser must then name it as damage (at most a period per xrun) and nothing else.
+    xruns = report["stream"]["flagged_callbacks"]
+    if xruns == 0:
+        assert code == 0 and report["transparent"] is True and out.startswith("TRANSPARENT"), out + err
     # Reference: PortAudio's latency of the duplex stream (input + output), in frames.
     expected = round(sum(report["stream"]["stream_latency_s"]) * SR)
     assert report["latency_frames"] == expected
     for i, ch in enumerate(report["channels"]):
-        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"], ch["word_errors"]) == (i, bits, "none", 0)
+        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"]) == (i, bits, "none")
+        assert (ch["polarity"], ch["gain_db"], ch["dc_offset_lsb"], ch["slips"], ch["drift_ppm"], ch["clipped"]) == \
+            (1, 0.0, 0.0, [], 0.0, 0)
+        assert ch["damaged_frames"] <= xruns * PERIOD, (ch["damaged"], xruns)
+        assert ch["transparent"] is (not ch["damaged"]) and (ch["word_errors"] == 0) is (not ch["damaged"])
     assert "caution" in err
 
 
