@@ -39,9 +39,37 @@ scale:
   of counter 2^64 - 1 (the index wraps like the counter)
 * ``gaussian``: 0.5·sqrt(-2 ln(U(a) + 1/2))·cos(2π(U(b) + 1/2))
 
-One Philox block thus serves four samples of a channel.  The kernel computes
-blocks a few ahead of their use into a small ring (off the feedback loop's
-critical path); the ring is a cache that never changes a value.
+One Philox block thus serves four samples of a channel.  The key's channel
+is ``IP_CHANNEL0 + c`` (0 + c unless a driver runs a group of a stream's
+channels on its own).
+
+Speed without a changed word
+----------------------------
+The recurrence is serial per channel (the next word needs the last error),
+so the kernel overlaps independent work around it, never reorders it:
+
+* a block runs in chunks of at most CHUNK_FRAMES frames; each chunk's dither
+  is computed for every channel first, in a loop of its own (the Philox
+  blocks are independent of each other and of the feedback loop);
+* when nothing moves (constant gain, requantized words, no mute or
+  auto-mute) the frames go through a lean loop that runs channels in pairs,
+  side by side, so the processor overlaps the two recurrences; each
+  channel's newest error stays in a register, the older ones are read from
+  a linear window at fixed distances, and the window is copied into the
+  circular history at the chunk's end;
+* the feedback sum is ``h_1·e[n-1] + h_2·e[n-2] + … + h_N·e[n-N]``,
+  summed from k = 1 upwards as documented, starting from its first product
+  rather than from ``0.0 + h_1·e[n-1]``.  The two sums differ only when
+  every product is zero, and then only in the sign of that zero; ``u = v -
+  fb`` differs only if v is also a zero (u is then +0 or -0), and then
+  ``floor(u + d + 1/2)`` is the same word and ``e = q - u`` the same stored
+  +0.  No word and no stored error changes (the reference tests compare
+  both bit for bit);
+* the denormal guard is a branch the processor predicts, not a data
+  dependence on the critical path.
+
+The scratch for all of it is ``rng_words`` (dither values as float64, error
+windows, the Philox block in use); nothing is carried in it between calls.
 
 Clip rule
 ---------

@@ -323,7 +323,9 @@ def render_file(
                 except _ReadError as exc:
                     raise RtstageError(f"cannot read {input_path} after {frames_read} frames: {exc.reason}; "
                                        "nothing was written") from None
-                except (sf.LibsndfileError, RuntimeError, AssertionError, OSError) as exc:
+                except _WriteError as exc:
+                    raise write_failure(output_path, tmp_path, exc.error) from None
+                except (sf.LibsndfileError, OSError) as exc:
                     raise write_failure(output_path, tmp_path, exc) from None
                 if frames_read < infile.frames:
                     raise RtstageError(f"cannot read {input_path}: it ended after {frames_read} of {infile.frames} frames; "
@@ -357,6 +359,14 @@ def render_file(
     if meter is not None and hasattr(meter, "set_engine_counts"):
         meter.set_engine_counts(engine.clipped, engine.nonfinite)
     return RenderResult(engine, meter, peak)
+
+
+class _WriteError(Exception):
+    """A write error from the writer thread (full disk, file-size limit, I/O)."""
+
+    def __init__(self, error):
+        super().__init__(str(error))
+        self.error = error
 
 
 class _ReadError(Exception):
@@ -450,7 +460,7 @@ class _Writer:
 
     def _check(self):
         if self._error is not None:
-            raise self._error
+            raise _WriteError(self._error)
 
     def __enter__(self):
         self._thread.start()

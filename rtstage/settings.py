@@ -210,7 +210,7 @@ class EngineSettings:
         if self.dither == "none" or self.dither_scale == 0.0:
             return [f"shaper '{shaper.id}' without dither"]
         if not DITHER_KINDS[self.dither].iid:
-            return [f"non-i.i.d. dither '{self.dither}' inside shaper '{shaper.id}'"]
+            return [f"dither '{self.dither}' (not i.i.d.) inside shaper '{shaper.id}'"]
         return []
 
     def to_dict(self):

@@ -115,7 +115,7 @@ CASES = [
     Case("render-zero-scale-shaper", R("{d}/in.wav", "{d}/out.wav", "--dither-scale", "0", "--shaper", "lvw-e5"), 2,
          "without dither", W),
     Case("render-hp-dither-in-shaper", R("{d}/in.wav", "{d}/out.wav", "--dither", "tpdf-hp", "--shaper", "diff1"), 2,
-         "non-i.i.d.", W),
+         "not i.i.d.", W),
     Case("render-unsafe-accepted", R("{d}/in.wav", "{d}/out.wav", "--dither", "none", "--shaper", "diff2",
                                      "--accept-unsafe-shaping", "--seed", "3"), 0, "jaes 2004", W,
          accepted=("out.wav",), lines=-1),
@@ -394,6 +394,41 @@ CASES = [
     Case("run-undithered-shaper", ["run", "--source", "{d}/in.wav", "--dither", "none", "--shaper", "diff1"], 2,
          "without dither", W),
     Case("run-control-port-huge", ["run", "--source", "{d}/in.wav", "--control-port", "70000"], 2, "control-port", W),
+    # ---------------------------------------------------------------- measure
+    Case("measure-missing", ["measure", "{d}/none.wav"], 2, "none.wav"),
+    Case("measure-text", ["measure", "{d}/text.wav"], 2, "cannot read", ("text.wav",)),
+    Case("measure-truncated", ["measure", "{d}/trunc.wav"], 2, "truncated", ("trunc.wav",)),
+    Case("measure-header-only", ["measure", "{d}/header.wav"], 2, "no audio frames", ("header.wav",)),
+    Case("measure-folder", ["measure", "{d}/dir.wav"], 2, "folder", ("dir.wav",)),
+    Case("measure-report-is-input", ["measure", "{d}/in.wav", "--report", "{d}/in.wav", "--overwrite"], 2,
+         "is the input", W),
+    Case("measure-report-hard-link", ["measure", "{d}/in.wav", "--report", "{d}/hard.wav", "--overwrite"], 2,
+         "resolves to the input", W + ("hard.wav",)),
+    Case("measure-report-exists", ["measure", "{d}/in.wav", "--report", "{d}/exists.json"], 2, "use --overwrite",
+         W + ("exists.json",)),
+    Case("measure-report-missing-folder", ["measure", "{d}/in.wav", "--report", "{d}/no/r.json"], 2, "does not exist", W),
+    Case("measure-plot-onto-file", ["measure", "{d}/in.wav", "--plot", "{d}/exists.png"], 2, "not a folder",
+         W + ("exists.png",)),
+    Case("measure-loudness-target-bad", ["measure", "{d}/in.wav", "--loudness-target", "loud"], 2, "", W),
+    Case("measure-force", ["measure", "{d}/in.wav", "--force"], 2, "--overwrite", W),
+    # ---------------------------------------------------------------- linktest, feed
+    Case("linktest-generate-exists", ["linktest", "generate", "{d}/exists.wav", "--seed", "1", "--seconds", "1"], 2,
+         "--overwrite", ("exists.wav",)),
+    Case("linktest-generate-folder", ["linktest", "generate", "{d}/dir.wav", "--seed", "1", "--seconds", "1"], 2,
+         "folder", ("dir.wav",)),
+    Case("linktest-generate-missing-folder", ["linktest", "generate", "{d}/no/x.wav", "--seed", "1", "--seconds", "1"],
+         2, "does not exist"),
+    Case("linktest-generate-force", ["linktest", "generate", "{d}/x.wav", "--seed", "1", "--force"], 2, "--overwrite"),
+    Case("linktest-analyse-missing", ["linktest", "analyse", "{d}/none.wav", "--seed", "1"], 2, "none.wav"),
+    Case("linktest-analyse-text", ["linktest", "analyse", "{d}/text.wav", "--seed", "1"], 2, "", ("text.wav",)),
+    Case("linktest-analyse-report-is-capture", ["linktest", "analyse", "{d}/in.wav", "--seed", "1", "--report",
+                                                "{d}/in.wav", "--overwrite"], 2, "is the input", W),
+    Case("linktest-no-action", ["linktest"], 2, ""),
+    Case("feed-check-missing", ["feed", "check", "{d}/none.toml"], 2, "none.toml"),
+    Case("feed-check-bad-toml", ["feed", "check", "{d}/bad.toml"], 2, "bad.toml", ("bad.toml",)),
+    Case("feed-check-non-utf8", ["feed", "check", "{d}/nonutf8.toml"], 2, "nonutf8.toml", ("nonutf8.toml",)),
+    Case("feed-check-unknown-key", ["feed", "check", "{d}/field.toml"], 2, "colour", ("field.toml",)),
+    Case("feed-no-action", ["feed"], 2, ""),
     # ---------------------------------------------------------------- the command line itself
     Case("no-command", [], 2, "command"),
     Case("unknown-command", ["frobnicate"], 2, "frobnicate"),
@@ -426,7 +461,8 @@ def test_catalogue_size():
     # The issue asks for at least 150 bad invocations across every command.
     assert len(CASES) >= 150
     commands = {c.argv[0] for c in CASES if c.argv}
-    assert commands >= {"render", "pipe", "run", "send", "watch", "shaper", "report", "demo", "devices"}
+    assert commands >= {"render", "pipe", "run", "send", "watch", "shaper", "report", "demo", "devices", "measure",
+                        "linktest", "feed"}
 
 
 @pytest.mark.parametrize("name", NAMES)

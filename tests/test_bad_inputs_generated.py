@@ -12,7 +12,7 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 
 from badinputs import Case, check_either, run_all
 
-BATCH = 8
+BATCH = 6
 
 number_text = st.one_of(
     st.integers(-10**20, 10**20).map(str),
@@ -21,7 +21,7 @@ number_text = st.one_of(
 )
 render_option = st.sampled_from(["--bits", "--gain-db", "--dither-scale", "--blocksize", "--seed", "--subtype",
                                  "--dither", "--shaper"])
-slow = settings(max_examples=3, deadline=None,
+slow = settings(max_examples=2, deadline=None,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 
 
@@ -51,7 +51,7 @@ def test_pipe_and_demo_numbers(tmp_path_factory, batch):
             argv += [k, v]
         cases.append(Case(f"gen-pipe-{i}", argv, None, stdin=bytes(4 * 64)))
         if option in ("--samplerate", "--blocksize"):
-            cases.append(Case(f"gen-demo-{i}", ["demo", "--offline", "--seconds", "1", option, value], None))
+            cases.append(Case(f"gen-demo-{i}", ["demo", "--offline", "--seconds", "0.5", option, value], None))
         else:
             cases.append(Case(f"gen-demo-{i}", ["demo", "--offline", "--seconds", value], None))
     for result in _run(tmp_path_factory.mktemp("gen"), cases).values():

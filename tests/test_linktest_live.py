@@ -54,7 +54,7 @@ class Wiring:
         ports = self.client.get_ports(client + ":", is_audio=True, is_input=is_input, is_output=not is_input)
         return sorted((p for p in ports if p.name.split(":")[0] == client), key=lambda p: p.name)
 
-    def wait_new_client(self, known, timeout_s=180, proc=None, err_path=None, channels=2):
+    def wait_new_client(self, known, timeout_s=300, proc=None, err_path=None, channels=2):
         """Name of a new client once all its ports (``channels`` in and out) are registered."""
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:
@@ -94,7 +94,7 @@ def _linktest(server, tmp_path, *extra):
 
 def _finish(proc, tmp_path):
     try:
-        out, _ = proc.communicate(timeout=180)
+        out, _ = proc.communicate(timeout=300)
     finally:
         if proc.poll() is None:
             proc.kill()
@@ -115,14 +115,22 @@ def test_direct_connection_is_transparent(server, tmp_path, bits):
         code, out, err = _finish(proc, tmp_path)
     finally:
         wiring.close()
-    assert code == 0, out + err
+    assert code in (0, 1), out + err
     report = json.load(open(report_path))
-    assert report["transparent"] is True and out.startswith("TRANSPARENT")
+    # Xruns of the graph that PortAudio reported to the stream: on a loaded machine a late cycle can garble
+    # a block; the analyser must then name it as damage (at most a period per xrun) and nothing else.
+    xruns = report["stream"]["flagged_callbacks"]
+    if xruns == 0:
+        assert code == 0 and report["transparent"] is True and out.startswith("TRANSPARENT"), out + err
     # Reference: PortAudio's latency of the duplex stream (input + output), in frames.
     expected = round(sum(report["stream"]["stream_latency_s"]) * SR)
     assert report["latency_frames"] == expected
     for i, ch in enumerate(report["channels"]):
-        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"], ch["word_errors"]) == (i, bits, "none", 0)
+        assert (ch["source_channel"], ch["bits_passed"], ch["requantization"]) == (i, bits, "none")
+        assert (ch["polarity"], ch["gain_db"], ch["dc_offset_lsb"], ch["slips"], ch["drift_ppm"], ch["clipped"]) == \
+            (1, 0.0, 0.0, [], 0.0, 0)
+        assert ch["damaged_frames"] <= xruns * PERIOD, (ch["damaged"], xruns)
+        assert ch["transparent"] is (not ch["damaged"]) and (ch["word_errors"] == 0) is (not ch["damaged"])
     assert "caution" in err
 
 
@@ -136,10 +144,10 @@ def test_through_a_second_rtstage_at_16_bits_tpdf(server, tmp_path):
             middle = subprocess.Popen(
                 [sys.executable, "-m", "rtstage", "run", "--device", "system", "--channels", "2", "--samplerate", str(SR),
                  "--blocksize", str(PERIOD), "--bits", "16", "--dither", "tpdf", "--seed", "31", "--quiet",
-                 "--control-port", "0", "--duration", "120", "--status-file", str(tmp_path / "middle.json")],
+                 "--control-port", "0", "--duration", "600", "--status-file", str(tmp_path / "middle.json")],
                 env=server.client_env(), cwd=ROOT, stdout=subprocess.DEVNULL, stderr=err)
         box = wiring.wait_new_client(known, proc=middle, err_path=middle_err)
-        deadline = time.monotonic() + 120
+        deadline = time.monotonic() + 300  # a cold numba cache compiles the engine's callback first
         while "rtstage: running:" not in middle_err.read_text():
             assert middle.poll() is None and time.monotonic() < deadline, middle_err.read_text()
             time.sleep(0.05)

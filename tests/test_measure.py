@@ -110,3 +110,16 @@ def test_report_command_reads_a_measure_report(files, tmp_path, capsys):
     assert main(["report", path, "--plot", str(tmp_path / "p")]) == 2
     err = capsys.readouterr().err
     assert err.startswith("rtstage: ") and err.count("\n") == 1
+
+
+def test_outputs_follow_the_output_policy(files, tmp_path, capsys):
+    # An existing report is kept unless --overwrite; the input itself is never an output.
+    path = tmp_path / "m.json"
+    path.write_text("keep")
+    assert main(["measure", files["dithered"], "--report", str(path), "--quiet"]) == 2
+    assert path.read_text() == "keep"
+    assert main(["measure", files["dithered"], "--report", str(path), "--quiet", "--overwrite"]) == 0
+    assert json.loads(path.read_text())["frames"] > 0
+    assert main(["measure", files["dithered"], "--report", files["dithered"], "--quiet", "--overwrite"]) == 2
+    assert sf.info(files["dithered"]).frames > 0
+    capsys.readouterr()

@@ -63,7 +63,7 @@ class Relay:
         return self.packets
 
 
-def _wait_for(path, pattern, proc, timeout_s=120):
+def _wait_for(path, pattern, proc, timeout_s=600):
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         text = open(path).read()
@@ -99,9 +99,9 @@ def test_chain_24_bit_feed_to_16_bit_link(tmp_path):
             _run("--device", "none", "--source", str(src), "--bits", "24", "--dither", "none",
                  "--rtp-out", f"{LOOPBACK}:{relay.port}", "--rtp-sdp", str(sdp_a), "--status-file",
                  str(tmp_path / "a.json")),
-            cwd=ROOT, env=ENV, capture_output=True, text=True, timeout=120)
+            cwd=ROOT, env=ENV, capture_output=True, text=True, timeout=600)
         assert result_a.returncode == 0, result_a.stderr
-        assert proc_b.wait(timeout=60) == 0, open(err_b).read()
+        assert proc_b.wait(timeout=600) == 0, open(err_b).read()
     finally:
         if proc_b.poll() is None:
             proc_b.kill()
@@ -124,7 +124,7 @@ def test_chain_24_bit_feed_to_16_bit_link(tmp_path):
     # B: what `rtstage render` makes of A's words at 16 bits, TPDF, seed 7.
     out = tmp_path / "render16.wav"
     r = subprocess.run([sys.executable, "-m", "rtstage", "render", str(a_wav), str(out), "--bits", "16", "--dither",
-                        "tpdf", "--seed", "7"], cwd=ROOT, env=ENV, capture_output=True, text=True, timeout=120)
+                        "tpdf", "--seed", "7"], cwd=ROOT, env=ENV, capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr
     expected, _ = sf.read(str(out), dtype="int16", always_2d=True)
     words_b = read_rfc_packets(packets_b, 96, 48, 2, 2)

@@ -34,7 +34,7 @@ def _free_port():
         return s.getsockname()[1]
 
 
-def _wait_for(path, pattern, proc, timeout_s=120):
+def _wait_for(path, pattern, proc, timeout_s=600):
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         m = re.search(pattern, open(path).read())

@@ -38,7 +38,7 @@ def test_live_rtp_second_output(jack_server, tmp_path):
          "--blocksize", "64", "--tap", tap, "--status-file", st, "--rtp-out", f"{LOOPBACK}:{sink.port}",
          "--rtp-ptime-ms", "0.25", "--rtp-sdp", sdp, "--control-port", "0", "--quiet"],
         env=jack_server.client_env({**os.environ, "PYTHONPATH": ROOT}), cwd=ROOT, capture_output=True, text=True,
-        timeout=180)
+        timeout=600)  # generous: a cold numba cache compiles the callback first
     assert result.returncode == 0, result.stderr
     packets = sink.stop()
     status = json.load(open(st))

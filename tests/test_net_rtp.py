@@ -11,6 +11,7 @@ import struct
 import subprocess
 import sys
 import threading
+import time
 
 import numpy as np
 import pytest
@@ -140,14 +141,25 @@ def test_rtp_words_equal_render(tmp_path, bits, encoding, channels, ptime):
     sf.write(str(src), x, samplerate, subtype="DOUBLE")
     settings = EngineSettings(bits=bits, dither="tpdf", shaper="flat", seed=11)
     sink = PacketCollector()
-    engine = NetEngine(settings, parse_source(str(src)),
-                       rtp_out={"host": LOOPBACK, "port": sink.port, "encoding": encoding, "ptime_ms": ptime})
+    out = {"host": LOOPBACK, "port": sink.port, "encoding": encoding, "ptime_ms": ptime}
+    if ptime == "1":
+        out["first_seq"] = 65500  # just below the 16-bit wrap, so that the stream crosses it
+    engine = NetEngine(settings, parse_source(str(src)), rtp_out=out).prepare()
+    if ptime == "1":
+        # The timestamp of clock sample s is ts_offset + s: put the 2^32 wrap about 0.1 s ahead (inside the stream).
+        now_samples = time.clock_gettime_ns(time.CLOCK_MONOTONIC) * samplerate // 10**9
+        engine.out.ts_offset = (2**32 - now_samples - samplerate // 10) % 2**32
     status = engine.run(install_signals=False)
     packets = sink.stop()
     fpp = frames_per_packet(ptime, samplerate)
     sample_bytes = 2 if encoding == "L16" else 3
     got = read_rfc_packets(packets, 96, fpp, channels, sample_bytes)
     assert len(packets) == -(-nframes // fpp)
+    if ptime == "1":
+        seqs = [struct.unpack("!H", p[2:4])[0] for p in packets]
+        stamps = [struct.unpack("!I", p[4:8])[0] for p in packets]
+        assert seqs[0] == 65500 and 0 in seqs  # the 16-bit sequence wrapped inside the stream
+        assert any(b < a for a, b in zip(stamps, stamps[1:]))  # and so did the 32-bit timestamp
     assert status["streams"]["rtp_out"]["packets_sent"] == len(packets)
 
     words = _render_cli(tmp_path, src, ["--bits", str(bits), "--dither", "tpdf", "--seed", "11"])
@@ -289,8 +301,6 @@ def test_sdp_source_reads_the_stream_format(tmp_path):
 
 def test_tai_clock_timestamps_follow_the_tai_clock():
     # RFC 7273 a=mediaclk:direct=OFFSET: the timestamp of the sample due at clock time t is OFFSET + t·rate (mod 2^32).
-    import time
-
     sink = PacketCollector()
     engine = NetEngine(EngineSettings(bits=16, seed=1), parse_source("silence"), samplerate=48000, channels=1,
                        rtp_out={"host": LOOPBACK, "port": sink.port}, clock="tai")

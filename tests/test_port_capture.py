@@ -87,14 +87,18 @@ def _capture_run(server, tmp_path, bits, shaper, seed, blocksize, seconds_src, e
     return reference, status, tap, summary, data, run.stderr
 
 
-@pytest.mark.parametrize("bits,shaper,seed,blocksize", [
-    (16, "wannamaker-f9", 20261202, 64),
-    (24, "lvw-e5", 7, 256),
+@pytest.mark.parametrize("bits,shaper,seed,blocksize,packed", [
+    (16, "wannamaker-f9", 20261202, 64, False),
+    (24, "lvw-e5", 7, 256, False),
+    (20, "lvw-e5", 8, 128, True),  # packed 24-bit samples (PortAudio int24) instead of the 32-bit container
 ])
-def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blocksize):
+def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blocksize, packed):
     # The fixture's server runs --realtime where SCHED_FIFO is permitted (root in CI).
-    reference, status, tap, summary, data, stderr = _capture_run(jack_server, tmp_path, bits, shaper, seed, blocksize, 4.0)
+    extra = ["--packed24"] if packed else []
+    reference, status, tap, summary, data, stderr = _capture_run(jack_server, tmp_path, bits, shaper, seed, blocksize,
+                                                                 4.0, extra)
     container = 16 if bits <= 16 else 24
+    assert status["port"]["packed24"] == packed and status["port"]["packed24_overruns"] == 0
 
     # Tap: bit-exact against rtstage render (the offline path; the same kernel, block-exact by design).
     tap_words, _ = sf.read(tap, dtype="int16" if bits <= 16 else "int32", always_2d=True)

@@ -37,7 +37,7 @@ def _signal(nframes, nchannels, seed=3):
 
 
 def _settings(dither="tpdf", shaper="wannamaker-f9"):
-    return EngineSettings(bits=16, dither=dither, shaper=shaper, seed=SEED, gain_db=-0.5, force=True)
+    return EngineSettings(bits=16, dither=dither, shaper=shaper, seed=SEED, gain_db=-0.5, accept_unsafe=True)
 
 
 def _reference(x, dither="tpdf", shaper="wannamaker-f9"):

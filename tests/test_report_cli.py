@@ -63,5 +63,5 @@ def test_report_errors(tmp_path, capsys):
     other = tmp_path / "other.json"
     other.write_text("{}")
     assert main(["report", str(other)]) == 2
-    assert "no meter report" in capsys.readouterr().err
+    assert "not a meter report" in capsys.readouterr().err
     assert main(["report", str(tmp_path / "missing.json")]) == 2

@@ -85,7 +85,8 @@ def test_command_line_overrides_feed_even_with_default_value(tmp_path):
 def test_defaults_without_feed():
     args = run_args([])
     assert load_run_feed(args) is None
-    assert args.blocksize == 256 and args.control_port == 47231 and args.tap is None and args.force is False
+    assert args.blocksize == 256 and args.control_port == 47231 and args.tap is None
+    assert args.accept_unsafe_shaping is False
 
 
 def test_metrics_refuses_non_loopback_without_option():

@@ -158,7 +158,7 @@ def test_ready_watchdog_freeze_and_resume(jack_server_factory, tmp_path):
                                  "--status-file", status_path], env=env, cwd=ROOT, stderr=err,
                                 stdout=subprocess.DEVNULL)
     try:
-        _, ready = manager.wait_for("READY=1", 120)
+        _, ready = manager.wait_for("READY=1", 300)  # a cold cache compiles the callback first
         # READY only after audio went out: the status line in the same datagram names a sample index > 0
         sample = int(ready.split("sample ")[1].split(",")[0])
         assert sample > 0, ready

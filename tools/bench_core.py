@@ -479,17 +479,38 @@ def run_pipe_subprocess(raw_path, out_path, env):
         raise RuntimeError(f"rtstage pipe exited with {proc.returncode}: {proc.stderr.strip()[-400:]}")
 
 
-def peak_rss_kb(cmd, env):
-    """Peak resident memory (kB) of a command, from the kernel's accounting of the waited-for child."""
-    import resource
+_RSS_PROBE = (
+    "import resource, subprocess, sys\n"
+    "proc = subprocess.run(sys.argv[1:], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)\n"
+    "sys.stderr.write(proc.stderr.decode()[-400:]) if proc.returncode else None\n"
+    "print(proc.returncode, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)\n"
+)
 
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    proc = subprocess.run(cmd, cwd=REPO_DIR, env=env, capture_output=True, text=True)
-    if proc.returncode != 0:
-        raise RuntimeError(f"{cmd[3]} exited with {proc.returncode}: {proc.stderr.strip()[-400:]}")
-    after = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    # ru_maxrss of RUSAGE_CHILDREN is the largest of all children so far: measure the smallest file first
-    return max(after, before) if after > before else after
+
+def peak_rss_kb(cmd, env):
+    """Peak resident memory (kB) of ``cmd``, from the kernel's accounting, in a fresh parent of its own."""
+    proc = subprocess.run([sys.executable, "-c", _RSS_PROBE, *cmd], cwd=REPO_DIR, env=env, capture_output=True, text=True)
+    code, rss_kb = proc.stdout.split()
+    if int(code) != 0:
+        raise RuntimeError(f"{' '.join(cmd[2:4])} exited with {code}: {proc.stderr.strip()[-400:]}")
+    return int(rss_kb)
+
+
+def bench_memory(minutes_list):
+    """Peak RSS of ``rtstage render`` (subprocess) for files of the given lengths: flat in the length?"""
+    env = subprocess_env()
+    rows = []
+    for minutes in minutes_list:
+        in_path = os.path.join(BUILD_DIR, f"programme_{minutes:g}min_48k_24bit.wav")
+        out_path = os.path.join(BUILD_DIR, "out_memory.wav")
+        write_programme_wav(in_path, 60.0 * minutes)
+        log(f"memory: rtstage render of {minutes:g} min")
+        t0 = time.perf_counter()
+        rss_kb = peak_rss_kb(render_command(in_path, out_path), env)
+        rows.append({"minutes": minutes, "input_bytes": os.path.getsize(in_path), "peak_rss_kb": rss_kb,
+                     "wall_s": time.perf_counter() - t0})
+        os.remove(out_path)
+    return {"rows": rows}
 
 
 def run_render_subprocess(in_path, out_path, env):
@@ -768,6 +789,13 @@ def print_table(results, out=sys.stdout):
         for name, step_s in wr["steps_best_s"].items():
             w(f"     {name:40s} {step_s * 1e3:8.1f} ms\n")
         w("\n")
+    mem = results.get("memory")
+    if mem:
+        w("4. memory: peak resident set of rtstage render (subprocess), by file length\n")
+        for r in mem["rows"]:
+            w(f"   {r['minutes']:6g} min ({r['input_bytes'] / 1e6:6.0f} MB in): {r['peak_rss_kb'] / 1024:7.1f} MiB peak RSS"
+              f"  ({r['wall_s']:.1f} s)\n")  # fmt: skip
+        w("\n")
     w("goals\n")
     for name, measured, goal, ok in goals(results):
         w(f"   {name:38s} {measured:>10s}   goal {goal:28s} {verdict(ok)}\n")
@@ -811,6 +839,8 @@ def main(argv=None):
     parser.add_argument("--matrix-seconds", type=float, default=0.2, help="seconds of audio per channel/taps case")
     parser.add_argument("--skip-kernel", action="store_true")
     parser.add_argument("--skip-matrix", action="store_true")
+    parser.add_argument("--memory-minutes", metavar="M,M", default="",
+                        help="peak RSS of rtstage render for files of these lengths, e.g. 10,60 (default: not measured)")
     parser.add_argument("--skip-render", action="store_true")
     parser.add_argument("--skip-warm", action="store_true")
     args = parser.parse_args(argv)
@@ -834,6 +864,8 @@ def main(argv=None):
         except (RuntimeError, OSError, subprocess.CalledProcessError) as exc:
             log(f"warm start not measured: {exc}")
             results["warm"] = {"error": str(exc).splitlines()[-1] if str(exc) else type(exc).__name__}
+    if args.memory_minutes:
+        results["memory"] = bench_memory([float(m) for m in args.memory_minutes.split(",") if m])
     results["goals"] = [
         {"name": name, "measured": measured, "goal": goal, "verdict": verdict(ok)}
         for name, measured, goal, ok in goals(results)

@@ -6,6 +6,12 @@ import sys
 from ..errors import RtstageError
 
 
+def _usage(args):
+    from ..files.exits import UsageError
+
+    raise UsageError("feed: give an action: check, example or unit ('rtstage feed --help' describes them)")
+
+
 def register(subparsers):
     """Add the ``feed`` command with ``check``, ``example`` and ``unit``."""
     feed = subparsers.add_parser("feed", help="feed files for running around the clock (docs/service.md)",
@@ -22,7 +28,7 @@ def register(subparsers):
     unit.add_argument("--feed-dir", default="/etc/rtstage", help="directory of the feed files (default /etc/rtstage)")
     unit.add_argument("--exec", dest="exec_command", help="command that runs rtstage (default: this Python with -m rtstage)")
     unit.set_defaults(handler=unit_command)
-    feed.set_defaults(handler=lambda args: (feed.print_help(sys.stderr), 2)[1])
+    feed.set_defaults(handler=_usage)
 
 
 def _run_parser():

@@ -124,8 +124,9 @@ def register(subparsers):
 
 
 def _usage(parser):
-    parser.print_help(sys.stderr)
-    return 2
+    from ..files.exits import UsageError
+
+    raise UsageError(f"{parser.prog.removeprefix('rtstage ')}: give an action ('{parser.prog} --help' describes them)")
 
 
 def run_generate(args):
@@ -135,8 +136,8 @@ def run_generate(args):
 
     seq.check_shape(args.bits, args.samplerate, args.channels, seq.sequence_frames(args.samplerate, 1.0))
     frames = seq.sequence_frames(args.samplerate, args.seconds)
-    log(seq.CAUTION)
     write_sequence(args.output, args.seed, args.bits, args.samplerate, args.channels, frames, overwrite=args.overwrite)
+    log(seq.CAUTION)
     log(f"wrote {args.output}: {frames} frames ({frames / args.samplerate:.3f} s), {args.channels} ch, "
         f"{args.bits}-bit words, {args.samplerate} Hz, seed {args.seed}")
     return 0

@@ -3,7 +3,9 @@
 import json
 import sys
 
+from ..files.exits import add_overwrite_options
 from ..log import log
+
 
 def register(subparsers):
     """Add the ``measure`` subcommand."""
@@ -21,6 +23,9 @@ def register(subparsers):
                    help="check the loudness: ebu-r128, or LUFS[:TOLERANCE_LU[:TRUE_PEAK_DBTP[:LRA_MAX_LU]]], e.g. -24:1:-2")
     p.add_argument("--json", action="store_true", help="print the figures as one JSON object on stdout")
     p.add_argument("--quiet", action="store_true", help="no summary on stderr")
+    p.add_argument("--accept-truncated", action="store_true",
+                   help="measure a WAV/AIFF whose data is shorter than its header declares (warns); refused by default")
+    add_overwrite_options(p)
     p.set_defaults(handler=run_measure)
 
 
@@ -30,17 +35,34 @@ def run_measure(args):
     from ..meters.measure import measure_file, summary_lines
     from ..meters.report import json_ready, write_report
 
-    target = parse_target(args.loudness_target) if args.loudness_target else None
-    report = measure_file(args.input, loudness_target=target, keep_series=bool(args.plot))
-    series = report.pop("series", None)
-    if args.report:
-        write_report(args.report, report)
-    if args.plot:
-        from ..meters.plots import write_measure_plots
+    from ..files.policy import OutputPlan
+    from ..render import open_input
 
-        paths = write_measure_plots(report, series, args.plot)
-        if not args.quiet:
-            log(f"wrote {', '.join(paths)}")
+    target = parse_target(args.loudness_target) if args.loudness_target else None
+    early = []
+    open_input(args.input, accept_truncated=args.accept_truncated, warn=early.append)[0].close()
+    # The outputs are checked by the output policy before the file is measured.
+    plan = OutputPlan(f"measuring {args.input}", inputs=[args.input], overwrite=args.overwrite)
+    if args.report:
+        plan.add_file(args.report, "--report")
+    folder = None
+    if args.plot:
+        from ..meters.plots import MEASURE_PLOT_NAMES
+
+        folder = plan.add_folder(args.plot, "--plot folder", MEASURE_PLOT_NAMES)
+    with plan.check():
+        for message in early:
+            log(message)
+        report = measure_file(args.input, loudness_target=target, keep_series=bool(args.plot))
+        series = report.pop("series", None)
+        if args.report:
+            write_report(args.report, report, plan=plan)
+        if args.plot:
+            from ..meters.plots import write_measure_plots
+
+            paths = write_measure_plots(report, series, args.plot, plan=plan, folder=folder)
+    if args.plot and not args.quiet:
+        log(f"wrote {', '.join(paths)}")
     if args.json:
         sys.stdout.write(json.dumps(json_ready(report), allow_nan=False) + "\n")
     if not args.quiet:

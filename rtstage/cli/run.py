@@ -35,6 +35,9 @@ def register(subparsers):
                      help=f"frames per callback, fixed (default {DEFAULT_BLOCKSIZE})")
     dev.add_argument("--latency", type=positive_float, help="suggested device latency in seconds")
     dev.add_argument("--channels", type=int, help="channel count (default: the source file's, else 2)")
+    dev.add_argument("--packed24", action="store_true",
+                     help="send 17..24-bit words as packed 3-byte samples (PortAudio int24) instead of "
+                     "left-justified in 32 bits, for devices that take that format")
     dev.add_argument("--callback", choices=("compiled", "python"), default="compiled",
                      help="callback mode; 'python' is a diagnostic fallback, never real-time safe (default compiled)")
     add_engine_options(run)
@@ -80,10 +83,9 @@ def run_command(args):
 
     in_journal = use_journal()
     hold_reload_signal()
-    feed = load_run_feed(args)
+    feed = load_run_feed(args)  # first: it resolves the options a feed may set (until then they are unset)
     if args.source is None and args.loop:
         raise RtstageError("--loop needs a --source file")
-    feed = load_run_feed(args)  # first: it resolves the options a feed may set (until then they are unset)
     if args.blocksize < 1 or args.blocksize > 1 << 16:
         raise RtstageError(f"blocksize must be between 1 and 65536 frames, got {args.blocksize}")
     if not 0 <= args.control_port < 65536:
@@ -108,6 +110,7 @@ def run_command(args):
         settle_s=args.settle, rtp_out=rtp_out,
     )
     configure_engine(engine, args)
+    engine.packed24 = bool(getattr(args, "packed24", False))
     if args.loudness_target:
         from ..meters.loudness import parse_target
 
@@ -171,9 +174,13 @@ def check_run_outputs(args):
         source_file = args.source
         open_input(source_file)[0].close()
     inputs = [source_file, getattr(args, "feed", None), *input_files_of(args)]
+    from ..service.runner import rotated_outputs
+
     plan = OutputPlan("running the live engine", inputs=inputs, overwrite=args.overwrite)
-    for path, what in ((args.tap, "--tap"), (args.tap and sidecar_path(args.tap), "--tap gaps sidecar"),
-                       (args.automation_log, "--automation-log"), (args.status_file, "--status-file"),
+    segments = rotated_outputs(args)  # with rotation the tap and log are written as segments instead
+    plain = [] if segments else [(args.tap, "--tap"), (args.tap and sidecar_path(args.tap), "--tap gaps sidecar"),
+                                 (args.automation_log, "--automation-log")]
+    for path, what in (*plain, *segments, (args.status_file, "--status-file"),
                        (getattr(args, "rtp_sdp", None), "--rtp-sdp")):
         if path:
             plan.add_file(path, what)
@@ -288,7 +295,7 @@ class ControlWiring:
         """Status fields of the control layer (for the final status)."""
         out = {}
         if self.target is not None:
-            out["control_changes_applied"] = len(self.target.applied)
+            out["control_changes_applied"] = getattr(self.target, "applied_count", len(self.target.applied))
         if self.args.automation_log:
             out["automation_log"] = self.args.automation_log
         if self.osc_status is not None:

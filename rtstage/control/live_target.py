@@ -59,6 +59,10 @@ POLL_S = 0.0005
 """How often the housekeeping thread looks for the applied publication while one is in flight."""
 
 
+APPLIED_KEPT = 4096
+"""Applied changes kept in :attr:`LiveTarget.applied` (the automation log has them all)."""
+
+
 def _dbfs_none(nchannels):
     return [None] * int(nchannels)
 
@@ -96,6 +100,8 @@ class LiveTarget(ControlTarget, Startable):
         self.apply_timeout_s = float(apply_timeout_s)
         self.poll_s = float(poll_s)
         self.applied = []
+        self.applied_count = 0
+        """Changes applied since the start (``applied`` keeps the latest :data:`APPLIED_KEPT` to 2x that)."""
         """``(frame, values, monotonic_s)`` of every applied change; ``monotonic_s`` is when the block that applied it
         started (from the callback's own clock), or when it was seen applied if that is unknown."""
         self.publications = 0
@@ -168,7 +174,7 @@ class LiveTarget(ControlTarget, Startable):
             "cpu_load": live.get("cpu_load", 0.0),
             "seed": self._start_seed,
             "settings": self.get(),
-            "changes_applied": len(self.applied),
+            "changes_applied": self.applied_count,
             "auto_muted": self._auto_muted(),
             "auto_muted_frames": self._auto_muted_frames(),
             "live": live,
@@ -252,6 +258,9 @@ class LiveTarget(ControlTarget, Startable):
         now = time.monotonic() if effect_s is None else effect_s
         if frame is not None:
             self.applied.append((frame, values, now))
+            self.applied_count += 1
+            if len(self.applied) > 2 * APPLIED_KEPT:  # bounded: a long run must not grow (tools/soak.py)
+                del self.applied[:-APPLIED_KEPT]
             if self.automation_log is not None:
                 self.automation_log.write(frame, values)
         with self._cond:

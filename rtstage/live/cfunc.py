@@ -33,7 +33,7 @@ from numba import carray, njit, types
 
 from .. import kernel as K
 from . import shared as S
-from . import timing
+from . import packing, timing
 from ._ptr import address_to_voidptr, voidptr_to_address
 from .sources import fill_generated
 
@@ -199,14 +199,23 @@ def _callback(input_ptr, output_ptr, frames, time_info, status_flags, user_data)
     clock = _view(table, S.T_CLOCK, (K.CLK_LEN,), np.int64)
     t0_ns = timing.cycle_begin(table[S.T_CTL], voidptr_to_address(time_info), ctl[S.C_FRAMES], clock[K.CLK_FRAME],
                                ctl[S.C_RING_HEAD])
-    result = callback_core(voidptr_to_address(input_ptr), voidptr_to_address(output_ptr), frames, status_flags,
-                           table_addr)
+    out_addr = voidptr_to_address(output_ptr)
+    if ctl[packing.C_PACKED24] == 0:
+        result = callback_core(voidptr_to_address(input_ptr), out_addr, frames, status_flags, table_addr)
+    elif frames <= ctl[packing.C_PACK_FRAMES]:
+        # Packed 24-bit device: the words go left-justified into the worker's scratch, then three bytes each.
+        result = callback_core(voidptr_to_address(input_ptr), ctl[packing.C_PACK_ADDR], frames, status_flags, table_addr)
+        packing.pack24(ctl[packing.C_PACK_ADDR], out_addr, frames * ctl[S.C_NCH])
+    else:
+        packing.zero_bytes(out_addr, 3 * frames * ctl[S.C_NCH])
+        ctl[packing.C_PACK_OVERRUNS] += 1
+        result = PA_CONTINUE
     timing.cycle_end(table[S.T_CTL], t0_ns)
     return result
 
 
 _DEPENDS = ("kernel.py", "_philox.py", "live/_ptr.py", "live/ring.py", "live/shared.py", "live/sources.py", "live/cfunc.py",
-            "live/timing.py")
+            "live/timing.py", "live/packing.py")
 
 
 def source_digest():

@@ -131,8 +131,8 @@ C_METER_ON = 43
 copies into its warm-up block, because that block has no meter ring)."""
 C_MRING_FRAMES = 44
 """Capacity of the meter ring in frames (set at layout, like ``C_METER_ON``)."""
-C_LEN = 96
-"""Slots 48..95 belong to :mod:`rtstage.live.timing` (callback timing, frame-time check)."""
+C_LEN = 104
+"""Slots 48..103 belong to :mod:`rtstage.live.timing` (callback timing, the per-cycle check) and :mod:`rtstage.live.packing`."""
 
 IN_DEVICE = 0
 """Input from PortAudio's input buffer (float32)."""

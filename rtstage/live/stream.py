@@ -16,6 +16,7 @@ import sounddevice as sd  # noqa: E402
 
 from ..errors import RtstageError  # noqa: E402
 from .cfunc import build_callback, callback_core  # noqa: E402
+from .packing import C_PACKED24  # noqa: E402
 
 
 def reinitialize_portaudio():
@@ -73,6 +74,8 @@ def open_stream(block, samplerate, blocksize, output_device, input_device=None, 
         raise RtstageError(f"unknown callback mode '{mode}' (compiled, python)")
     userdata = ffi.cast("void *", block.address)
     out_dtype = "int16" if block.out_dtype.__name__ == "int16" else "int32"
+    if int(block.ctl[C_PACKED24]):  # packed three-byte samples (rtstage.live.packing)
+        out_dtype = "int24"
     nch = block.nchannels
     try:
         if input_device is None:

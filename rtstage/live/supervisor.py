@@ -119,6 +119,10 @@ class LiveEngine(ControlSurface):
         sent from the callback.
     """
 
+    packed24 = False
+    """Send 17..24-bit words as packed three-byte samples (PortAudio int24; :mod:`rtstage.live.packing`); set
+    before :meth:`prepare`."""
+
     meter_ring_s = METER_RING_S
     """Meter ring capacity in seconds; set to 0 before :meth:`prepare` to run without meters."""
     tap_writer = TapWriter
@@ -192,6 +196,8 @@ class LiveEngine(ControlSurface):
         # into the shared block below, and later changes go out through the seqlock (set_settings).
         self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
         self.settings = self.engine.settings
+        if self.packed24 and (self.engine.width != 32 or self.callback_mode != "compiled"):
+            raise RtstageError("packed 24-bit output needs a 17..24-bit word and the compiled callback")
         # The tap ring feeds the tap file and the RTP output alike.
         geometry = P.geometry(self.channels, self.engine.width, self.blocksize, self.samplerate,
                               self.tap_path or self.rtp_out_options, 0 if data is None else data.shape[0],
@@ -239,6 +245,8 @@ class LiveEngine(ControlSurface):
             cmd += ["--latency", str(self.latency)]
         if self.worker_load_thread:
             cmd += ["--load-thread"]
+        if self.packed24:
+            cmd += ["--packed24"]
         proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
         deadline = time.monotonic() + timeout_s
         line = ""

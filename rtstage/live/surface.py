@@ -65,4 +65,5 @@ class ControlSurface:
         if seq != self._logged_seq and seq != 0:
             self._logged_seq = seq
             self.applied_log.append({"seq": seq, "frame": frame})
+            del self.applied_log[:-1000]  # bounded for long runs; the automation log keeps every change
             log(f"settings #{seq // 2} took effect at sample {frame}")

@@ -302,12 +302,16 @@ def port_status(ctl, samplerate, blocksize, late_at=None):
 
     ``late_at`` lists the server frames of late cycles (``engine.port_late``).
     """
+    from .packing import C_PACK_OVERRUNS, C_PACKED24
+
     period = int(ctl[C_HOST_PERIOD])
     block_s = blocksize / float(samplerate)
     max_ns = int(ctl[C_CB_NS_MAX])
     return {
         "host_period_frames": period,
         "cycle_check": period > 0,
+        "packed24": bool(ctl[C_PACKED24]),
+        "packed24_overruns": int(ctl[C_PACK_OVERRUNS]),
         "slip_events": int(ctl[C_SLIP_EVENTS]),
         "periods_off": int(ctl[C_SLIP_NET]),
         "periods_missing_or_repeated": int(ctl[C_SLIP_TOTAL]),

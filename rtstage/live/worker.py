@@ -134,6 +134,9 @@ def stream(args):
 
     frame_clock = JackFrameClock(enabled="JACK" in args.hostapi_name)  # the per-cycle port check (JACK only)
     frame_clock.install(block.ctl)
+    from .packing import install as install_packing
+
+    pack_scratch = install_packing(block.ctl, nch, max_frames, args.packed24)  # noqa: F841 (kept alive)
     try:
         s = open_stream(block, args.samplerate, args.blocksize, out_index, in_index, args.latency, args.callback)
         from .realtime import promote_new_threads, thread_ids
@@ -194,6 +197,7 @@ def main(argv=None):
     ps.add_argument("--hostapi-name", required=True)
     ps.add_argument("--callback", default="compiled")
     ps.add_argument("--load-thread", action="store_true")
+    ps.add_argument("--packed24", action="store_true")
     args = p.parse_args(argv)
     if args.command == "probe":
         probe(args)

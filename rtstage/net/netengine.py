@@ -392,6 +392,7 @@ class NetEngine:
             self._tap = _TapThread(self.tap_path, self.ctl, self.tap_ring, rate, self.settings.bits, info)
         if self.out is not None:
             self._sock = open_sender_socket(self.out)
+        self.state = "prepared"
         return self
 
     def _gen_params(self):
@@ -440,6 +441,8 @@ class NetEngine:
         """Start the threads: sender first, then the producer (paced) or the receiver (arrival-clocked)."""
         if self.state == "new":
             self.prepare()
+        if self.state != "prepared":
+            raise RtstageError(f"the engine cannot start from state {self.state!r}")
         if self._tap is not None:
             self._tap.start()
         self._start_meters()

@@ -247,6 +247,8 @@ def load_feed(path):
         raise RtstageError(f"feed {path}: cannot read ({exc.strerror})") from None
     except tomllib.TOMLDecodeError as exc:
         raise RtstageError(f"feed {path}: not valid TOML ({exc})") from None
+    except UnicodeDecodeError as exc:
+        raise RtstageError(f"feed {path}: not UTF-8 text (byte {exc.start})") from None
     return check_feed(data, path)
 
 

@@ -112,6 +112,19 @@ def segment_frames_for(samplerate, nchannels, bytes_per_sample, rotate_s=None, r
     return frames
 
 
+def _write_json_atomic(path, obj):
+    """Write a sidecar whole or not at all: a hidden temporary file in the same folder, renamed onto ``path``."""
+    from ..files.policy import TEMP_PREFIX
+
+    folder, name = os.path.split(path)
+    tmp = os.path.join(folder, f"{TEMP_PREFIX}{name}.tmp")
+    with open(tmp, "w") as f:
+        json.dump(obj, f, indent=1)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+
+
 def _retain(path, keep, extra_suffixes=(".json",)):
     """Remove the oldest segments of ``path`` beyond ``keep``; returns the start frames removed."""
     if keep is None:
@@ -405,8 +418,7 @@ class RotatingTapWriter:
         dropped = dropped_total - seg.pop("dropped_before")
         sidecar = {**seg, "end_frame": seg["start_frame"] + seg["frames"], "dropped_frames": dropped,
                    "samplerate": self.samplerate, **self.info, "state_at_start": self._state_at(seg, dropped_total)}
-        with open(seg["path"] + ".json", "w") as f:
-            json.dump(sidecar, f, indent=1)
+        _write_json_atomic(seg["path"] + ".json", sidecar)
         self._file = None
 
     def _state_at(self, seg, dropped_total):

@@ -59,8 +59,15 @@ def add_service_arguments(parser):
 
 
 def load_run_feed(args):
-    """Read ``--feed`` and fill unset options from it (then from the defaults); returns the Feed or None."""
+    """Read ``--feed`` and fill unset options from it (then from the defaults); returns the Feed or None.
+
+    Idempotent: a second call returns the feed of the first without resolving again (after the first,
+    every option is set, and a second resolution would take them all for command-line options).
+    """
+    if hasattr(args, "_feed_origin"):
+        return getattr(args, "_feed", None)
     feed = F.load_feed(args.feed) if getattr(args, "feed", None) else None
+    args._feed = feed
     args._feed_origin = F.resolve_args(args, feed)
     if args.tap_rotate_s is not None or args.tap_rotate_mb is not None or args.tap_keep is not None:
         if not args.tap:
@@ -113,13 +120,32 @@ def segment_frames(args, samplerate, nchannels, bits):
     return segment_frames_for(samplerate, nchannels, bytes_per_sample, args.tap_rotate_s, args.tap_rotate_mb)
 
 
+def rotated_outputs(args):
+    """The first files a rotating tap and log will write, ``[(path, what)]``, for the output policy's check.
+
+    Fixes the run id of the segment names (``args.segment_run_id``) so that
+    the files checked are the files written.  Empty without rotation.
+    """
+    if not rotation_wanted(args):
+        return []
+    from .rotate import new_run_id, segment_path
+
+    if getattr(args, "segment_run_id", None) is None:
+        args.segment_run_id = new_run_id()
+    first = segment_path(args.tap, 0, args.segment_run_id)
+    out = [(first, "--tap (first segment)"), (first + ".json", "--tap segment sidecar")]
+    if args.automation_log:
+        out.append((segment_path(args.automation_log, 0, args.segment_run_id), "--automation-log (first segment)"))
+    return out
+
+
 def configure_engine(engine, args):
     """Before ``engine.prepare()``: make the engine write its tap in segments when asked."""
     if not rotation_wanted(args):
         return
     from .rotate import BoundarySnapshots, RotatingTapWriter, new_run_id
 
-    holder = {"run_id": new_run_id()}
+    holder = {"run_id": getattr(args, "segment_run_id", None) or new_run_id()}
 
     def factory(path, block, samplerate, bits, info=None):
         frames = segment_frames(args, samplerate, block.nchannels, bits)
@@ -323,7 +349,7 @@ class ServiceWiring:
             "restarts": st["restarts"], "gaps": st["discontinuities"],
             "gap_s": sum(g["gap_s"] for g in st["gaps"]),
             "cpu_load": st["cpu_load"], "cpu_load_max": st["cpu_load_max"],
-            "control_changes": len(target.applied) if target is not None else 0,
+            "control_changes": getattr(target, "applied_count", len(target.applied)) if target is not None else 0,
             "reloads": self.reloads,
             "tap_dropped_frames": st["tap_dropped_frames"],
             "meter_dropped_frames": eng.block.counter(S.C_MRING_DROPPED),
