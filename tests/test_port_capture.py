@@ -72,7 +72,7 @@ def _capture_run(server, tmp_path, bits, shaper, seed, blocksize, seconds_src, e
         run = subprocess.run([sys.executable, "-m", "rtstage", "run", "--source", src, "--bits", str(bits), "--dither",
                               "tpdf", "--shaper", shaper, "--seed", str(seed), "--blocksize", str(blocksize), "--tap",
                               tap, "--status-file", status_path, "--quiet", *extra],
-                             env=env, cwd=ROOT, capture_output=True, text=True, timeout=120)
+                             env=env, cwd=ROOT, capture_output=True, text=True, timeout=600)
         assert run.returncode == 0, run.stderr
         cap.stdin.write("stop\n")
         cap.stdin.flush()
@@ -122,7 +122,7 @@ def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blo
     # The capture's own record: its late cycles (excluded: its reads may be torn) and server frame jumps (a stall
     # of the server, seen by every client in the same cycle).
     jumps, late = cycle_events(data["cycle_start"], data["cycle_pos"], period)
-    window = blocksize + 2 * period
+    window = 2 * blocksize + 2 * period  # PortAudio buffers up to a user block ahead of the port
     first, last = -offset, reference.shape[0] - offset  # capture frames while rtstage's source played
     content_gaps = [g for c in per_channel for g in c["gaps"]]
     port_gaps = [g for g in status["gaps"] if g["reason"].startswith("port:")]
@@ -131,10 +131,11 @@ def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blo
     def near(frame, frames):
         return any(abs(frame - f) <= window for f in frames)
 
-    # (a) No silent loss: every stretch missing or repeated in what the port delivered is either the capture's
-    # own late cycle or reported by rtstage at the same sample index.
+    # (a) No silent loss: every stretch missing, repeated or torn in what the capture holds is either at one of
+    # the capture's own late or skipped cycles (its own record) or reported by rtstage at the same sample index.
+    own = late + [pos for pos, _ in jumps]
     for g in content_gaps:
-        assert near(g["captured_frame"], late) or near(g["reference_frame"], reported_at), (g, port_gaps, late)
+        assert near(g["captured_frame"], own) or near(g["reference_frame"], reported_at), (g, port_gaps, own)
     # (b) Every cycle the capture saw pass without a call is either reported by rtstage (the server's own stall,
     # seen by every client) or the capture's alone (JACK2 wakes a client late for a whole cycle once for two
     # cycles): then the capture missed a period of content there.

@@ -50,7 +50,9 @@ def compare_words(captured, reference, probe_frames=64):
         ``offset`` (reference index of captured frame 0, or None when no
         alignment was found), ``matched_frames``, ``gaps`` (list of
         ``{"captured_frame", "reference_frame", "frames"}``: positive frames
-        are missing from the capture, negative repeated), ``mismatch``
+        are missing from the capture, negative repeated; ``damaged_frames``
+        when the capture held frames matching no part of the reference there,
+        as a read torn between two periods does), ``mismatch``
         (captured index of a difference that no realignment explains, or None).
         Trailing frames after the reference ends (silence after a file source
         completes) are not compared.
@@ -104,10 +106,20 @@ def compare_words(captured, reference, probe_frames=64):
         # Realign near here (a lost or repeated period moves the capture by a few periods at most).
         lo = max(0, ri - 64 * probe_frames)
         new_ri = find(ci, lo)
+        skip = 0
+        while new_ri is None and skip < 4 * probe_frames:
+            # A period read while its writer was already filling the next one is torn inside: skip frames of
+            # the capture until it lines up again, and count them as damaged.
+            skip += 1
+            new_ri = find(ci + skip, lo)
         if new_ri is None:
             result["mismatch"] = ci
             break
-        result["gaps"].append({"captured_frame": ci, "reference_frame": ri, "frames": new_ri - ri})
+        gap = {"captured_frame": ci, "reference_frame": ri, "frames": new_ri - skip - ri}
+        if skip:
+            gap["damaged_frames"] = skip
+        result["gaps"].append(gap)
+        ci += skip
         ri = new_ri
     result["matched_frames"] = matched
     return result
