@@ -541,12 +541,150 @@ def _nonfinite_in(x, n, c, counts, hist, dith, w0, w):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
+def _rest_quads(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                q_lo, q_hi, fb_peak, shift, tap, wtap, c_hi):
+    """Channel quads (a .. a + 3, below ``c_hi``) of the lean loop: two pairs side by side, four recurrences
+    in flight (see :func:`_rest_loop`); each pair keeps its own interleaved scratch area."""
+    h1 = fparams[FP_COEF0]
+    for a in range(0, c_hi - 3, 4):
+        b = a + 1
+        c = a + 2
+        d = a + 3
+        base = a * DITHER_STRIDE
+        base2 = c * DITHER_STRIDE
+        w0 = base + WINDOW_OFFSET
+        w02 = base2 + WINDOW_OFFSET
+        for k in range(1, ntaps + 1):
+            slot = (hpos0 - k) & HIST_MASK
+            dith[_u(w0 + 2 * (ntaps - k))] = hist[a, slot]
+            dith[_u(w0 + 2 * (ntaps - k) + 1)] = hist[b, slot]
+            dith[_u(w02 + 2 * (ntaps - k))] = hist[c, slot]
+            dith[_u(w02 + 2 * (ntaps - k) + 1)] = hist[d, slot]
+        slot = (hpos0 - 1) & HIST_MASK
+        ea = hist[a, slot]
+        eb = hist[b, slot]
+        ec = hist[c, slot]
+        ed = hist[d, slot]
+        for j in range(count):
+            n = _u(n_lo + j)
+            w = w0 + 2 * (ntaps + j)
+            w2 = w02 + 2 * (ntaps + j)
+            xa = np.float64(x[n, a])
+            xb = np.float64(x[n, b])
+            xc = np.float64(x[n, c])
+            xd = np.float64(x[n, d])
+            if not (math.isfinite(xa) and math.isfinite(xb) and math.isfinite(xc) and math.isfinite(xd)):
+                xa = _nonfinite_in(x, n, a, counts, hist, dith, w0, w)
+                xb = _nonfinite_in(x, n, b, counts, hist, dith, w0 + 1, w + 1)
+                xc = _nonfinite_in(x, n, c, counts, hist, dith, w02, w2)
+                xd = _nonfinite_in(x, n, d, counts, hist, dith, w02 + 1, w2 + 1)
+                if not math.isfinite(np.float64(x[n, a])):
+                    ea = 0.0
+                if not math.isfinite(np.float64(x[n, b])):
+                    eb = 0.0
+                if not math.isfinite(np.float64(x[n, c])):
+                    ec = 0.0
+                if not math.isfinite(np.float64(x[n, d])):
+                    ed = 0.0
+            va = xa * gain
+            vb = xb * gain
+            vc = xc * gain
+            vd = xd * gain
+            if tap:
+                vq[n, a] = va
+                vq[n, b] = vb
+                vq[n, c] = vc
+                vq[n, d] = vd
+            va = va * scale
+            vb = vb * scale
+            vc = vc * scale
+            vd = vd * scale
+            ua = va
+            ub = vb
+            uc = vc
+            ud = vd
+            if ntaps > 0:
+                fba = h1 * ea
+                fbb = h1 * eb
+                fbc = h1 * ec
+                fbd = h1 * ed
+                for k in range(2, ntaps + 1):
+                    hk = fparams[FP_COEF0 + k - 1]
+                    fba = fba + hk * dith[_u(w - 2 * k)]
+                    fbb = fbb + hk * dith[_u(w - 2 * k + 1)]
+                    fbc = fbc + hk * dith[_u(w2 - 2 * k)]
+                    fbd = fbd + hk * dith[_u(w2 - 2 * k + 1)]
+                ua = va - fba
+                ub = vb - fbb
+                uc = vc - fbc
+                ud = vd - fbd
+            da = 0.0
+            db = 0.0
+            dc = 0.0
+            dd = 0.0
+            if dithered:
+                da = dith[_u(base + 2 * j)]
+                db = dith[_u(base + 2 * j + 1)]
+                dc = dith[_u(base2 + 2 * j)]
+                dd = dith[_u(base2 + 2 * j + 1)]
+            qa = np.floor(ua + da + 0.5)
+            qb = np.floor(ub + db + 0.5)
+            qc = np.floor(uc + dc + 0.5)
+            qd = np.floor(ud + dd + 0.5)
+            ea = qa - ua
+            eb = qb - ub
+            ec = qc - uc
+            ed = qd - ud
+            if (qa > q_hi or qa < q_lo or qb > q_hi or qb < q_lo or qc > q_hi or qc < q_lo or qd > q_hi
+                    or qd < q_lo):
+                if qa > q_hi or qa < q_lo:
+                    counts[a, CNT_CLIPPED] += 1
+                    qa, ea = _limit(qa, ua, q_lo, q_hi, fb_peak)
+                if qb > q_hi or qb < q_lo:
+                    counts[b, CNT_CLIPPED] += 1
+                    qb, eb = _limit(qb, ub, q_lo, q_hi, fb_peak)
+                if qc > q_hi or qc < q_lo:
+                    counts[c, CNT_CLIPPED] += 1
+                    qc, ec = _limit(qc, uc, q_lo, q_hi, fb_peak)
+                if qd > q_hi or qd < q_lo:
+                    counts[d, CNT_CLIPPED] += 1
+                    qd, ed = _limit(qd, ud, q_lo, q_hi, fb_peak)
+            ea = _guard(ea)
+            eb = _guard(eb)
+            ec = _guard(ec)
+            ed = _guard(ed)
+            dith[_u(w)] = ea
+            dith[_u(w + 1)] = eb
+            dith[_u(w2)] = ec
+            dith[_u(w2 + 1)] = ed
+            word_a = np.int64(qa) << shift
+            word_b = np.int64(qb) << shift
+            word_c = np.int64(qc) << shift
+            word_d = np.int64(qd) << shift
+            y[n, a] = word_a
+            y[n, b] = word_b
+            y[n, c] = word_c
+            y[n, d] = word_d
+            if wtap:
+                yq[n, a] = word_a
+                yq[n, b] = word_b
+                yq[n, c] = word_c
+                yq[n, d] = word_d
+        for j in range(count):
+            slot = (hpos0 + j) & HIST_MASK
+            hist[a, slot] = dith[_u(w0 + 2 * (ntaps + j))]
+            hist[b, slot] = dith[_u(w0 + 2 * (ntaps + j) + 1)]
+            hist[c, slot] = dith[_u(w02 + 2 * (ntaps + j))]
+            hist[d, slot] = dith[_u(w02 + 2 * (ntaps + j) + 1)]
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
 def _rest_pairs(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
-                q_lo, q_hi, fb_peak, shift, tap, wtap):
-    """Channel pairs (a, a + 1) of the lean loop, lane by lane side by side (see :func:`_rest_loop`)."""
+                q_lo, q_hi, fb_peak, shift, tap, wtap, c_lo):
+    """Channel pairs (a, a + 1) from ``c_lo`` on, lane by lane side by side (see :func:`_rest_loop`)."""
     nch = hist.shape[0]
     h1 = fparams[FP_COEF0]
-    for a in range(0, nch - 1, 2):
+    for a in range(c_lo, nch - 1, 2):
         b = a + 1
         base = a * DITHER_STRIDE
         w0 = base + WINDOW_OFFSET  # lane a at even, lane b at odd offsets
@@ -673,9 +811,9 @@ def _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos0, fparams, hist, counts, dith, dit
     The arithmetic of each sample is that of the general loop in
     :func:`_process`, operation for operation, so the words and the state
     are the same.  Channels run in pairs, the two lanes side by side in the
-    same straight-line code: the two recurrences are independent, so the
-    processor overlaps them (and the compiler may pair their operations in
-    one vector register; IEEE arithmetic per lane is the same).  Each
+    same straight-line code, and from four channels on two pairs at once
+    (quads): the recurrences are independent, so the processor overlaps
+    them.  Each
     channel's newest error stays in a register (it is the only operand on
     the feedback loop's critical path); the older ones are read from a
     linear window in the scratch (the last ``ntaps`` errors before the
@@ -688,9 +826,13 @@ def _rest_loop(x, y, vq, yq, n_lo, n_hi, hpos0, fparams, hist, counts, dith, dit
     """
     nch = hist.shape[0]
     count = n_hi - n_lo
-    if nch >= 2:
+    quads = nch & ~3 if nch >= 4 else 0
+    if quads:
+        _rest_quads(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
+                    q_lo, q_hi, fb_peak, shift, tap, wtap, quads)
+    if nch - quads >= 2:
         _rest_pairs(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
-                    q_lo, q_hi, fb_peak, shift, tap, wtap)
+                    q_lo, q_hi, fb_peak, shift, tap, wtap, quads)
     if nch & 1:
         _rest_single(x, y, vq, yq, n_lo, count, hpos0, fparams, hist, counts, dith, dithered, ntaps, gain, scale,
                      q_lo, q_hi, fb_peak, shift, tap, wtap, nch - 1)

@@ -7,13 +7,15 @@
    ``process_block`` with the tap on plus :func:`rtstage.live.shared.meter_ring_write`
    (the consumer's tail is advanced in the same loop, so nothing is dropped).
    Reported: the extra time as a fraction of the kernel's own time (goal
-   <= 0.20), best of ``--reps`` runs each.
+   <= 0.10, issue 17), best of ``--reps`` runs each.  As in the live callback,
+   the kernel's taps write into the meter ring in place when the block fits
+   before the ring's end (:func:`rtstage.live.shared.meter_ring_reserve`).
 2. **Meter thread.**  A :class:`rtstage.live.meterthread.MeterThread` drains the
    same programme from a meter ring filled in 64-frame blocks, publishing a
    snapshot every 100 ms of audio (10 Hz, as live); reported: thread CPU time
    per second of audio (the share of one core it needs in real time).
 
-Usage: ``.venv/bin/python tools/bench_meters.py [--seconds 10] [--reps 5] [--json]``
+Usage: ``.venv/bin/python tools/bench_meters.py [--seconds 1] [--reps 41] [--json]``
 """
 
 import argparse
@@ -42,9 +44,18 @@ def _loop(x, y, vq, blocksize, iparams, fparams, hist, counts, clock, ramp, rng_
     pos = 0
     while pos < nframes:
         n = min(blocksize, nframes - pos)
-        K.process_block(x[pos:], y[pos:], vq, n, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag)
+        # as the live callback does: the kernel's taps write into the meter ring in place when the
+        # block fits before the ring's end, else into scratch rows that are then copied
+        slot = S.meter_ring_reserve(ctl, n) if metered else -1
+        if slot >= 0:
+            K.process_block(x[pos:], y[pos:], ring_x[slot : slot + n], n, iparams, fparams, hist, counts, clock, ramp,
+                            rng_words, rng_tag, ring_w[slot : slot + n])
+            S.meter_ring_commit(ctl, n)
+        else:
+            K.process_block(x[pos:], y[pos:], vq, n, iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag)
+            if metered:
+                S.meter_ring_write(ctl, ring_x, ring_w, vq, y[pos:], n)
         if metered:
-            S.meter_ring_write(ctl, ring_x, ring_w, vq, y[pos:], n)
             ctl[S.C_MRING_TAIL] = ctl[S.C_MRING_HEAD]  # the consumer keeps up
         pos += n
 
@@ -99,8 +110,8 @@ def meter_thread(x, settings, blocksize=64):
 
 def main(argv=None):
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--seconds", type=float, default=10.0)
-    p.add_argument("--reps", type=int, default=5)
+    p.add_argument("--seconds", type=float, default=1.0, help="audio per timed run (short runs fit in a time slice)")
+    p.add_argument("--reps", type=int, default=41)
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
     settings = EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=1).resolved()
@@ -118,7 +129,7 @@ def main(argv=None):
             "meter_over_kernel": round((metered_s - plain_s) / plain_s, 4),
         }
         print(f"{blocksize}-frame blocks: meter work on the audio thread = "
-              f"{100 * (metered_s - plain_s) / plain_s:.1f} % of the kernel's time (goal <= 20 %)", file=sys.stderr)
+              f"{100 * (metered_s - plain_s) / plain_s:.1f} % of the kernel's time (goal <= 10 %)", file=sys.stderr)
     busy_s = meter_thread(x, settings)
     result["meter_thread_cpu_s"] = round(busy_s, 4)
     result["meter_thread_core_share"] = round(busy_s / args.seconds, 4)

@@ -67,6 +67,12 @@ def _run(x, y, n, table, ctl, nch):
     rows = ctl[S.C_MAX_FRAMES] if meter_on else 0  # no rows: taps off
     vq = _view(table, S.T_VQ, (rows, nch), np.float64)
     yq = _view(table, S.T_YQ, (rows, nch), y.dtype)
+    # The kernel's taps write straight into the meter ring when the block fits before its end.
+    slot = S.meter_ring_reserve(ctl, n)
+    if slot >= 0:
+        mrows = ctl[S.C_MRING_FRAMES]
+        vq = _view(table, S.T_MX, (mrows, nch), np.float64)[slot : slot + n]
+        yq = _view(table, S.T_MW, (mrows, nch), y.dtype)[slot : slot + n]
     K.process_block(
         x, y, vq, n,
         _view(table, S.T_KIP, (K.IP_LEN,), np.int64),
@@ -81,7 +87,9 @@ def _run(x, y, n, table, ctl, nch):
     )
     ring = _view(table, S.T_RING, (ctl[S.C_RING_FRAMES], nch), y.dtype)
     S.ring_write(ctl, ring, y, n)
-    if meter_on:
+    if slot >= 0:
+        S.meter_ring_commit(ctl, n)
+    elif meter_on:
         mrows = ctl[S.C_MRING_FRAMES]
         S.meter_ring_write(ctl, _view(table, S.T_MX, (mrows, nch), np.float64), _view(table, S.T_MW, (mrows, nch), y.dtype),
                            vq, yq, n)

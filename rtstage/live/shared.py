@@ -334,6 +334,35 @@ def meter_ring_write(ctl, ring_x, ring_w, vq, words, nframes):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
+def meter_ring_reserve(ctl, nframes):
+    """Producer (callback): the ring slot where ``nframes`` frames can be written in place, or -1.
+
+    -1 when the meters are off, the block is empty, the ring lacks room or the
+    run would cross the ring's end; the caller then writes through
+    :func:`meter_ring_write` (which copies, or counts the frames dropped).
+    After writing rows ``slot .. slot + nframes - 1`` (the kernel's taps point
+    there), publish them with :func:`meter_ring_commit`.
+    """
+    if ctl[C_METER_ON] == 0 or nframes == 0:
+        return -1
+    cap = ctl[C_MRING_FRAMES]
+    head = ctl[C_MRING_HEAD]
+    fence()
+    tail = ctl[C_MRING_TAIL]
+    slot = head % cap
+    if cap - (head - tail) < nframes or slot + nframes > cap:
+        return -1
+    return slot
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def meter_ring_commit(ctl, nframes):
+    """Producer (callback): publish ``nframes`` frames written in place after :func:`meter_ring_reserve`."""
+    fence()
+    ctl[C_MRING_HEAD] = ctl[C_MRING_HEAD] + nframes
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
 def meter_ring_read(ctl, ring_x, ring_w, out_x, out_w, start):
     """Consumer (meter thread): copy up to ``out_x.shape[0] - start`` frames into rows ``start..`` of the outputs.
 
