@@ -53,7 +53,7 @@ def test_alsa_file_plugin_receives_the_render(tmp_path, bits, blocksize):
     status_path = str(tmp_path / "status.json")
     run = subprocess.run([sys.executable, "-m", "rtstage", "run", "--hostapi", "ALSA", "--device", "rtstage_test_card",
                           "--source", src, *args, "--blocksize", str(blocksize), "--quiet", "--status-file", status_path],
-                         cwd=ROOT, env=env, capture_output=True, text=True, timeout=180)
+                         cwd=ROOT, env=env, capture_output=True, text=True, timeout=600)
     assert run.returncode == 0, run.stderr
     status = json.load(open(status_path))
     assert status["device"]["hostapi"] == "ALSA" and status["source_done"]

@@ -65,7 +65,7 @@ def test_rtstage_loses_no_cycle_the_native_client_did_not(jack_server, tmp_path)
         tap, status_path = str(tmp_path / "tap.wav"), str(tmp_path / "status.json")
         run = subprocess.run([sys.executable, "-m", "rtstage", "run", "--source", src, *args, "--blocksize", "64",
                               "--tap", tap, "--status-file", status_path, "--quiet"],
-                             env=env, cwd=ROOT, capture_output=True, text=True, timeout=180)
+                             env=env, cwd=ROOT, capture_output=True, text=True, timeout=600)
         assert run.returncode == 0, run.stderr
         native.stdin.write("report\n")
         native.stdin.flush()
