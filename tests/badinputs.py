@@ -274,7 +274,7 @@ def _wait_for_temp(folder, proc, timeout_s=60.0):
     return False
 
 
-CASE_TIMEOUT_S = 120
+CASE_TIMEOUT_S = 300
 
 
 def _read_all(stream, proc):
