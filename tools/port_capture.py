@@ -229,7 +229,7 @@ def main(argv=None):
 
     client.activate()
     print(json.dumps({"ready": True, "samplerate": sr, "period": period}), flush=True)
-    deadline = time.monotonic() + 120
+    deadline = time.monotonic() + 900  # the recorded client may first compile its callback (cold cache)
     connected = set()
     while len(connected) < len(sources) and time.monotonic() < deadline:
         for c, src in enumerate(sources):
