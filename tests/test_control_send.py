@@ -65,12 +65,13 @@ def test_send_not_ok_exits_1(capsys, stack):
     assert status == 1 and "between 2 and 24" in json.loads(out)["error"]
 
 
-def test_send_no_server_exits_2(capsys):
+def test_send_no_server_exits_1(capsys):
+    """No server is a run-time failure: exit status 1 (the exit statuses documented in README.md)."""
     with socket.socket() as s:  # a port nobody listens on: bind, read it, close
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     status, out, err = run(capsys, "send", "--port", str(port), "status")
-    assert status == 2 and out == "" and "cannot connect" in err
+    assert status == 1 and out == "" and "cannot connect" in err
 
 
 def test_interactive(capsys, monkeypatch, stack):

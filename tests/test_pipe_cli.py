@@ -124,8 +124,8 @@ def test_broken_pipe_exits_cleanly():
         if proc.poll() is None:
             proc.kill()
             proc.wait()
-    assert "Traceback" not in err
-    assert "closed by the reader" in err
+    # A closed stdout ends the command quietly: nothing on stderr (README, exit statuses).
+    assert err == ""
 
 
 @pytest.mark.parametrize(
