@@ -144,7 +144,7 @@ class TestAuthentication:
         # RFC 1122 (127.0.0.0/8) and RFC 4291 (::1)
         assert is_loopback("127.0.0.1") and is_loopback("127.3.2.1") and is_loopback("::1")
         assert is_loopback("localhost")
-        assert not is_loopback("0.0.0.0") and not is_loopback("::") and not is_loopback("10.0.0.1")
+        assert not is_loopback("0.0.0.0") and not is_loopback("::") and not is_loopback("192.0.2.1")  # RFC 5737
 
     def test_token_required_first(self):
         with control_stack(logger=QUIET, token="s3cret-token") as stack:

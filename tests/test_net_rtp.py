@@ -215,7 +215,7 @@ def test_socket_options_on_a_loopback_socket():
 
 
 def test_multicast_destination_parsed_not_sent():
-    # An address from RFC 5771's 224.0.0.0/4 block, computed (never written as a literal), only parsed here.
+    # An address from RFC 5771's IPv4 multicast block, computed (never written as a literal), only parsed here.
     group = str(ipaddress.IPv4Address((224 << 24) | (1 << 8) | 23))
     assert RtpOutConfig(host=group, port=5004, samplerate=48000, channels=2, bits=24, ttl=16).multicast
     assert parse_hostport(f"{group}:5004") == (group, 5004)
