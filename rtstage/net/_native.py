@@ -13,7 +13,9 @@ Word ring (single producer, single consumer)
 start; frame k lives in row ``k % rows``.  The producer writes a block only if
 it fits whole (otherwise it adds its frames to ``ctl[dropped]``) and advances
 the head after a fence; the consumer copies, then advances the tail after a
-fence.  The same discipline as :mod:`rtstage.live.shared`.
+fence.  The index logic and the copies are those of the one ring,
+:mod:`rtstage.live.ring`; only the counters' places differ (no on/off or
+capacity slot: the capacity is the ring array's length).
 """
 
 import ctypes
@@ -22,6 +24,7 @@ import ctypes.util
 import numpy as np
 from numba import njit, types
 
+from ..live import ring as R
 from ..live._ptr import address_to_voidptr, fence
 
 CLOCK_REALTIME = 0
@@ -30,6 +33,8 @@ CLOCK_TAI = 11
 TIMER_ABSTIME = 1
 EINTR = 4
 NS_PER_S = 1_000_000_000
+RING_UNLIMITED = 1 << 62
+"""A read limit larger than any ring's backlog."""
 
 # C functions called from compiled code by symbol name (resolved in the running process, so numba can
 # cache the loops; a ctypes function pointer would forbid the cache).
@@ -85,51 +90,32 @@ def sample_time_ns(q0, r0, rate, j):
     return q0 + a * NS_PER_S + (r0 + b * NS_PER_S + rate - 1) // rate
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def ring_avail(ctl, head, tail):
     """Frames the consumer may read."""
-    h = ctl[head]
-    fence()
-    return h - ctl[tail]
+    return R.available(ctl, head, tail, RING_UNLIMITED)[1]
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def ring_write(ctl, head, tail, dropped, ring, words, nframes):
     """Append ``words[:nframes]`` whole, or count them dropped; returns True when written."""
-    rows = ring.shape[0]
     h = ctl[head]
-    t = ctl[tail]
     fence()
-    if rows == 0:
-        return False
-    if h + nframes - t > rows:
+    t = ctl[tail]
+    if ring.shape[0] - (h - t) < nframes:
         ctl[dropped] += nframes
         return False
-    nch = ring.shape[1]
-    for n in range(nframes):
-        row = (h + n) % rows
-        for c in range(nch):
-            ring[row, c] = words[n, c]
-    fence()
-    ctl[head] = h + nframes
+    R.copy_in(ring, h, words, nframes)
+    R.advance(ctl, head, h, nframes)
     return True
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def ring_read(ctl, head, tail, ring, out, nframes):
     """Copy up to ``nframes`` frames into ``out``; returns the number copied."""
-    rows = ring.shape[0]
-    h = ctl[head]
-    fence()
-    t = ctl[tail]
-    n = min(nframes, h - t)
-    nch = ring.shape[1]
-    for i in range(n):
-        row = (t + i) % rows
-        for c in range(nch):
-            out[i, c] = ring[row, c]
-    fence()
-    ctl[tail] = t + n
+    t, n = R.available(ctl, head, tail, nframes)
+    R.copy_out(ring, t, out, 0, n)
+    R.advance(ctl, tail, t, n)
     return n
 
 
