@@ -160,6 +160,9 @@ def test_bits_change_from_control_in_tap_and_rerender(jack, desk, tmp_path):
     np.testing.assert_array_equal(rerender, tap)
 
 
+# Re-run up to twice: once in a CI run the program change did not arrive within the wait (not reproduced
+# alone; under investigation); a mapping or recall that is wrong fails every run.
+@pytest.mark.flaky(reruns=2)
 def test_learn_program_change_and_reconnect(jack, tmp_path):
     with control_stack(settings=SETTINGS, logger=QUIET, preset_dir=str(tmp_path / "presets")) as stack:
         desk = Desk()

@@ -33,6 +33,7 @@ import subprocess
 import sys
 
 import numpy as np
+import pytest
 import soundfile as sf
 from numpy.testing import assert_array_equal
 
@@ -46,6 +47,10 @@ def _near(frame, frames, tol):
     return any(abs(((frame - f + 2**31) % 2**32) - 2**31) <= tol for f in frames)
 
 
+# Re-run up to twice: the native client's jump detector needs two calls to confirm a jump, so two server
+# stalls in consecutive cycles can hide the first from it (seen once in a CI run with 253 server xruns in
+# 6 s); a cycle lost by rtstage alone fails every run.
+@pytest.mark.flaky(reruns=2)
 def test_rtstage_loses_no_cycle_the_native_client_did_not(jack_server, tmp_path):
     binary = str(tmp_path / "jack_passthrough")
     subprocess.run(["gcc", "-O2", "-Wall", "-o", binary, os.path.join(ROOT, "tools", "jack_passthrough.c"), "-ljack"],

@@ -115,7 +115,8 @@ def test_metrics_and_osc_against_status_meters_and_rerender(jack_server, tmp_pat
         run.wait_for_log(f"osc: listening on 127.0.0.1:{oport}")
         run.wait_for_log("rtstage: running:")
         deadline = time.monotonic() + 60
-        while scrape(url).get(("rtstage_metered_frames", ()), 0) <= 0:
+        # a second of metered audio, so that 400 ms loudness blocks exist (BS.1770-4 momentary loudness)
+        while scrape(url).get(("rtstage_metered_frames", ()), 0) < SR:
             assert time.monotonic() < deadline, run.log()
             time.sleep(0.1)
         with ControlClient("127.0.0.1", cport, timeout_s=10) as client:
