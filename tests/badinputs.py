@@ -385,6 +385,7 @@ def check(result):
     elif case.lines > 0:
         assert len(err_lines) == case.lines, where
         assert all(line.startswith("rtstage:") for line in err_lines), where
+        assert not any(line.startswith("rtstage: rtstage") for line in err_lines), where  # the name said once
     if case.expect:
         assert case.expect in result.stderr.lower(), where
     allowed = set(case.accepted) if case.status == 0 else set()

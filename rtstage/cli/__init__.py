@@ -62,7 +62,10 @@ def main(argv=None):
 
     def command():
         parser = build_parser()
-        args = parser.parse_args(argv)
+        args, extra = parser.parse_known_args(argv)
+        if extra:  # name the command whose options they are not
+            choices = parser._subparsers._group_actions[0].choices
+            (choices.get(args.command) or parser).error(f"unrecognized arguments: {' '.join(extra)}")
         if getattr(args, "handler", None) is None:
             names = ", ".join(sorted(parser._subparsers._group_actions[0].choices))
             raise UsageError(f"give a command: {names} ('rtstage --help' describes them)")

@@ -44,7 +44,8 @@ class Parser(argparse.ArgumentParser):
     """An ArgumentParser whose usage errors are one line: ``rtstage: <command>: <message> (see --help)``."""
 
     def error(self, message):
-        raise UsageError(f"{self.prog}: {message} (see '{self.prog} --help')".removeprefix("rtstage "))
+        command = self.prog.removeprefix("rtstage").strip()  # the error line itself starts "rtstage: "
+        raise UsageError(f"{command + ': ' if command else ''}{message} (see '{self.prog} --help')")
 
 
 class _RefuseForce(argparse.Action):

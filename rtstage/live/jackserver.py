@@ -12,8 +12,13 @@ The dummy backend runs the graph from a timer, which is all an rtstage test
 needs: deterministic input comes from ``--source``.
 """
 
+import ctypes
+import ctypes.util
+import glob
 import itertools
+import mmap
 import os
+import struct
 import shutil
 import signal
 import subprocess
@@ -32,6 +37,95 @@ def jackd_path():
 
 
 _NOTICE = []
+
+# JACK2's server table (common/shm.h, common/shm.c): a header in /dev/shm/jack-shm-registry holding
+# MAX_SERVERS = 8 slots of (pid, name); guarded by the SysV semaphore with key 0x282929.  jackd frees its
+# slot when it exits normally; a jackd that is killed (SIGKILL, a crash) leaves its slot taken, and jackd
+# reclaims a dead slot only for a server of the same name, so eight such deaths under distinct names make
+# every later server fail with "Too many servers already active".
+_REGISTRY_PATH = "/dev/shm/jack-shm-registry"
+_REGISTRY_MAGIC = 0x4A41434B  # "JACK"
+_REGISTRY_SEM_KEY = 0x282929
+_MAX_SERVERS = 8
+_SLOTS_OFFSET = 24  # magic u32, protocol u16 (+2), type, size, hdr_len, entry_len (i32 each)
+
+
+class _Sembuf(ctypes.Structure):
+    _fields_ = [("sem_num", ctypes.c_ushort), ("sem_op", ctypes.c_short), ("sem_flg", ctypes.c_short)]
+
+
+def _registry_lock(libc, op):
+    """Take (op=-1) or give back (op=+1) JACK's registry semaphore; False when it cannot be used."""
+    semid = libc.semget(_REGISTRY_SEM_KEY, 1, 0)
+    if semid < 0:
+        return False
+    buf = _Sembuf(0, op, 0x1000)  # SEM_UNDO: released by the kernel should this process die holding it
+    return libc.semop(semid, ctypes.byref(buf), 1) == 0
+
+
+def _pid_alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def reclaim_dead_server_slots(prefix="rtstage-", path=_REGISTRY_PATH):
+    """Free JACK server-table slots left by killed servers whose name starts with ``prefix``.
+
+    jackd itself frees a dead server's slot only when a server of the same name
+    starts again; rtstage's private servers have unique names, so a server that
+    was killed (the restart test does it on purpose; a wedged server is killed
+    after its stop timeout) would hold its slot until the next reboot.  This
+    does for rtstage's own dead servers what jackd does for same-named ones,
+    under JACK's registry semaphore.  Slots of other servers are never touched.
+
+    The freed servers' socket and semaphore files in /dev/shm go with them.
+
+    Returns
+    -------
+    list of str
+        Names of the slots freed (empty when the table is absent or unrecognised).
+    """
+    if not os.path.exists(path):
+        return []
+    libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+    freed = []
+    with open(path, "r+b") as f:
+        size = os.fstat(f.fileno()).st_size
+        if size < _SLOTS_OFFSET:
+            return []
+        with mmap.mmap(f.fileno(), size) as table:
+            magic = struct.unpack_from("<I", table, 0)[0]
+            hdr_len = struct.unpack_from("<i", table, 16)[0]
+            stride = (hdr_len - _SLOTS_OFFSET) // _MAX_SERVERS
+            if magic != _REGISTRY_MAGIC or stride < 8 or hdr_len > size:
+                return []
+            if not _registry_lock(libc, -1):
+                return []
+            try:
+                for slot in range(_MAX_SERVERS):
+                    at = _SLOTS_OFFSET + slot * stride
+                    pid = struct.unpack_from("<i", table, at)[0]
+                    raw = bytes(table[at + 4 : at + stride]).split(b"\0", 1)[0]
+                    name = raw.decode(errors="replace").split(":", 1)[-1]  # "jack-<uid>:<server name>:"
+                    if pid > 0 and name.startswith(prefix) and not _pid_alive(pid):
+                        table[at : at + stride] = bytes(stride)
+                        freed.append(name.rstrip(":"))
+            finally:
+                _registry_lock(libc, +1)
+    shm_dir = os.path.dirname(path)
+    for name in freed:  # the dead server's sockets and semaphores ("_" ends the name in each file name)
+        for leftover in glob.glob(os.path.join(shm_dir, f"jack_{glob.escape(name)}_*")) + \
+                glob.glob(os.path.join(shm_dir, f"jack_sem.{os.getuid()}_{glob.escape(name)}_*")):
+            try:
+                os.unlink(leftover)
+            except OSError:
+                pass
+    return freed
 
 
 def _notice_once():
@@ -105,6 +199,7 @@ class JackDummyServer:
             raise RtstageError("jackd is not installed (package jackd2)")
         if self.running:
             return self
+        reclaim_dead_server_slots()
         env = self.client_env()
         log = open(self.log_path, "ab")
         try:
@@ -145,8 +240,12 @@ class JackDummyServer:
             try:
                 self.process.wait(timeout_s)
             except subprocess.TimeoutExpired:
+                from ..log import log
+
+                log(f"warning: jackd '{self.name}' did not stop within {timeout_s:g} s of SIGTERM; killed")
                 self.process.kill()
                 self.process.wait()
+                reclaim_dead_server_slots()
         self.process = None
 
     def kill(self):
@@ -154,6 +253,7 @@ class JackDummyServer:
         if self.process is not None and self.process.poll() is None:
             self.process.kill()
             self.process.wait()
+            reclaim_dead_server_slots()
         self.process = None
 
     def __enter__(self):

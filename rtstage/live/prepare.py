@@ -81,22 +81,31 @@ def geometry(channels, out_bits, blocksize, samplerate, tap, src_frames, meter_r
 
 
 def shared_block(block_geometry):
-    """A :class:`~rtstage.live.shared.SharedBlock` in a new file under /dev/shm that the worker maps.
+    """A :class:`~rtstage.live.shared.SharedBlock` in an anonymous memory file that the worker maps.
+
+    The file has no name in any folder (``memfd_create``; where that is missing, a
+    file under /dev/shm unlinked at once), so a control process that is killed
+    leaves nothing behind; the worker receives the descriptor (``pass_fds``).
 
     Returns
     -------
-    (SharedBlock, mmap.mmap, str)
-        The block, its memory (keep it alive) and the file's path (unlink it when done).
+    (SharedBlock, mmap.mmap, int)
+        The block, its memory (keep it alive) and the open descriptor (close it when done).
     """
     nbytes = S._layout(*block_geometry)[2]
-    shm_dir = "/dev/shm" if os.path.isdir("/dev/shm") else None
-    fd, path = tempfile.mkstemp(prefix="rtstage-live-", dir=shm_dir)
+    if hasattr(os, "memfd_create"):
+        fd = os.memfd_create("rtstage-live", os.MFD_CLOEXEC)
+    else:
+        shm_dir = "/dev/shm" if os.path.isdir("/dev/shm") else None
+        fd, path = tempfile.mkstemp(prefix="rtstage-live-", dir=shm_dir)
+        os.unlink(path)
     try:
         os.ftruncate(fd, nbytes)
         memory = mmap.mmap(fd, nbytes)
-    finally:
+    except BaseException:
         os.close(fd)
-    return S.SharedBlock(*block_geometry, buffer=memory), memory, path
+        raise
+    return S.SharedBlock(*block_geometry, buffer=memory), memory, fd
 
 
 def configure_input(block, samplerate, source_spec, loop):

@@ -172,7 +172,7 @@ class LiveEngine(ControlSurface):
         self._prepared = False
         self.worker = None
         self.worker_load_thread = bool(worker_load_thread)
-        self._shm_path = None
+        self._shm_fd = None
         self.rtp_out_options = dict(rtp_out) if rtp_out else None
         self.net_out = None
         self._port_events = 0
@@ -202,7 +202,7 @@ class LiveEngine(ControlSurface):
         geometry = P.geometry(self.channels, self.engine.width, self.blocksize, self.samplerate,
                               self.tap_path or self.rtp_out_options, 0 if data is None else data.shape[0],
                               self.meter_ring_s)
-        self.block, self._memory, self._shm_path = P.shared_block(geometry)
+        self.block, self._memory, self._shm_fd = P.shared_block(geometry)
         if data is not None:
             self.block.source[:] = data
         P.configure_input(self.block, self.samplerate, src, self.loop)
@@ -236,7 +236,7 @@ class LiveEngine(ControlSurface):
     def _open(self, timeout_s=60.0):
         """Start a stream worker and wait until its stream runs; raises RtstageError when it cannot open."""
         cmd = P.worker_command(
-            "stream", "--shm", self._shm_path, "--geometry", ",".join(str(v) for v in self.block.geometry),
+            "stream", "--shm-fd", str(self._shm_fd), "--geometry", ",".join(str(v) for v in self.block.geometry),
             "--samplerate", str(self.samplerate), "--blocksize", str(self.blocksize),
             "--output-name", self.output_name, "--hostapi-name", self.hostapi_name, "--callback", self.callback_mode)
         if self.input_name:
@@ -247,7 +247,7 @@ class LiveEngine(ControlSurface):
             cmd += ["--load-thread"]
         if self.packed24:
             cmd += ["--packed24"]
-        proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
+        proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, pass_fds=(self._shm_fd,))
         deadline = time.monotonic() + timeout_s
         line = ""
         while time.monotonic() < deadline and not self._stop_event.is_set():
@@ -441,12 +441,9 @@ class LiveEngine(ControlSurface):
             status["meters"] = meter_final
         self._final_tap = tap_summary
         gc.unfreeze()
-        if self._shm_path is not None:
-            try:
-                os.unlink(self._shm_path)
-            except OSError:
-                pass
-            self._shm_path = None
+        if self._shm_fd is not None:
+            os.close(self._shm_fd)
+            self._shm_fd = None
         return status
 
     # --- status and meters (rtstage.live.status, rtstage.live.metering) ---------------------

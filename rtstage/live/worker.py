@@ -14,7 +14,7 @@ so the kernel, the dither clock and the source position carry on.
 Commands (internal)::
 
     python -m rtstage.live.worker probe   [device options]      # JSON on stdout
-    python -m rtstage.live.worker stream  --shm PATH --geometry N,BITS,MAXF,RING,SRC ...
+    python -m rtstage.live.worker stream  --shm-fd FD --geometry N,BITS,MAXF,RING,SRC ...
 
 ``stream`` prints one JSON line when the stream runs (or fails to open),
 then writes PortAudio's CPU load into ``ctl`` every 20 ms until it reads
@@ -100,9 +100,8 @@ def stream(args):
     from .stream import close_stream, open_stream
 
     geometry = [int(v) for v in args.geometry.split(",")]
-    fd = os.open(args.shm, os.O_RDWR)
-    memory = mmap.mmap(fd, 0)
-    os.close(fd)
+    memory = mmap.mmap(args.shm_fd, 0)  # the control process's anonymous memory file, inherited
+    os.close(args.shm_fd)
     block = S.SharedBlock(*geometry, buffer=memory, init=False)
     nch, out_bits, max_frames = geometry[0], geometry[1], geometry[2]
 
@@ -187,7 +186,7 @@ def main(argv=None):
     pp = sub.add_parser("probe")
     _device_args(pp)
     ps = sub.add_parser("stream")
-    ps.add_argument("--shm", required=True)
+    ps.add_argument("--shm-fd", type=int, required=True)
     ps.add_argument("--geometry", required=True)
     ps.add_argument("--samplerate", type=int, required=True)
     ps.add_argument("--blocksize", type=int, required=True)
