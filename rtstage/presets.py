@@ -14,9 +14,9 @@ Example (``presets/encoder16.toml``)::
 """
 
 import os
-import tomllib
 
 from .errors import RtstageError
+from .files.tomlread import load_toml
 
 PRESET_DIR = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "presets")
 
@@ -55,15 +55,7 @@ def load_preset(name):
     path = preset_path(name)
     if not os.path.exists(path):
         raise RtstageError(f"unknown preset '{name}' (no file {path}; shipped: {', '.join(list_presets())})")
-    try:
-        with open(path, "rb") as f:
-            data = tomllib.load(f)
-    except OSError as exc:
-        raise RtstageError(f"preset {path}: cannot read ({exc.strerror})") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise RtstageError(f"preset {path}: not valid TOML ({exc})") from None
-    except UnicodeDecodeError as exc:
-        raise RtstageError(f"preset {path}: not UTF-8 text (byte {exc.start})") from None
+    data = load_toml(path, f"preset {path}")
     values = {}
     for key, value in data.items():
         if key not in PRESET_FIELDS:

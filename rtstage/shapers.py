@@ -25,12 +25,12 @@ References
 
 import math
 import os
-import tomllib
 from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from .errors import RtstageError
+from .files.tomlread import load_toml
 from .kernel import MAX_TAPS  # the kernel owns its array sizes: at most MAX_TAPS error-filter taps
 
 
@@ -129,15 +129,7 @@ def shaper_from_toml(path):
     ``design_samplerate_hz``, ``source``, ``description``.  Extra keys written
     by the designer (its figures and settings) are ignored here.
     """
-    try:
-        with open(path, "rb") as f:
-            data = tomllib.load(f)
-    except OSError as exc:
-        raise RtstageError(f"cannot read shaper file {path}: {exc.strerror}") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise RtstageError(f"shaper file {path}: not valid TOML ({exc})") from None
-    except UnicodeDecodeError as exc:
-        raise RtstageError(f"shaper file {path}: not UTF-8 text (byte {exc.start})") from None
+    data = load_toml(path, f"shaper file {path}")
     coefs = data.get("coefs")
     if not isinstance(coefs, list) or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in coefs):
         raise RtstageError(f"shaper file {path}: field 'coefs' must be a list of numbers")

@@ -1,4 +1,4 @@
-"""The compiled PortAudio callback cannot call back into Python: checked on its LLVM IR.
+"""The compiled PortAudio callbacks cannot call back into Python: checked on their LLVM IR.
 
 The real-time rules (DEVELOPERS.md) say the audio thread runs no Python, takes no GIL, raises nothing
 and allocates nothing.  numba compiles a function that can raise (with its default error model, an
@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numba
 import numpy as np
+import pytest
 from numba import njit, types
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -94,18 +95,21 @@ def findings(llvm_ir):
     return sorted(set(found))
 
 
-_DUMP = """
-import sys
-from rtstage.live.cfunc import compile_callback
-sys.stdout.write(compile_callback(cache=False).inspect_llvm())
-"""
+_DUMPS = {
+    # The live engine's callback (rtstage run, rtstage demo).
+    "engine": "from rtstage.live.cfunc import compile_callback as compile_it\ncb = compile_it(cache=False)",
+    # The link test's play-and-record callback (rtstage linktest run).
+    "linktest": "from rtstage.linktest.loop import compile_loop_callback as compile_it\ncb = compile_it()",
+}
 
 
-def test_compiled_callback_cannot_call_back_into_python(tmp_path):
+@pytest.mark.parametrize("which", sorted(_DUMPS))
+def test_compiled_callback_cannot_call_back_into_python(tmp_path, which):
     # A fresh numba cache, so that every function the callback calls is compiled in this process and its IR
     # is part of the callback's module (a function loaded from the cache comes as object code, without IR).
     env = dict(os.environ, PYTHONPATH=str(ROOT), NUMBA_CACHE_DIR=str(tmp_path / "numba"))
-    result = subprocess.run([sys.executable, "-c", _DUMP], cwd=ROOT, env=env, capture_output=True, text=True,
+    script = f"import sys\n{_DUMPS[which]}\nsys.stdout.write(cb.inspect_llvm())\n"
+    result = subprocess.run([sys.executable, "-c", script], cwd=ROOT, env=env, capture_output=True, text=True,
                             timeout=900)
     assert result.returncode == 0, result.stderr[-2000:]
     llvm_ir = result.stdout

@@ -21,10 +21,10 @@ import math
 import os
 import re
 import threading
-import tomllib
 
 from .. import __version__, params
 from ..errors import RtstageError
+from ..files.tomlread import load_toml, TomlFileMissing
 from . import PROTOCOL_VERSION
 
 OPS = ("hello", "auth", "list", "get", "set", "status", "meters", "subscribe", "unsubscribe",
@@ -164,16 +164,11 @@ class PresetStore:
         """The values of preset ``name``, validated one by one."""
         path = self._path(name)
         try:
-            with open(path, "rb") as f:
-                data = tomllib.load(f)
-        except FileNotFoundError:
+            data = load_toml(path, f"preset {name!r}")
+        except TomlFileMissing:
             raise RequestError(f"no preset named {name!r}") from None
-        except OSError as exc:
-            raise RequestError(f"cannot read preset {name!r}: {exc.strerror}") from None
-        except tomllib.TOMLDecodeError as exc:
-            raise RequestError(f"preset {name!r} is not valid TOML ({exc})") from None
-        except UnicodeDecodeError as exc:
-            raise RequestError(f"preset {name!r} is not UTF-8 text (byte {exc.start})") from None
+        except RtstageError as exc:
+            raise RequestError(str(exc)) from None
         values = data.get("values")
         if not isinstance(values, dict) or not values:
             raise RequestError(f"preset {name!r} has no [values] table")

@@ -25,10 +25,11 @@ import time
 os.environ.setdefault("JACK_NO_START_SERVER", "1")  # never let PortAudio's JACK client start a server
 
 import numpy as np  # noqa: E402
-from numba import carray, cfunc, njit, types  # noqa: E402
+from numba import carray, cfunc, njit  # noqa: E402
 
 from ..errors import RtstageError  # noqa: E402
 from ..live._ptr import address_to_voidptr, voidptr_to_address  # noqa: E402
+from ..live.pa_abi import CALLBACK_SIGNATURE, PA_COMPLETE, PA_CONTINUE, PA_INPUT_OVERFLOW, PA_OUTPUT_UNDERFLOW  # noqa: E402
 from . import sequence as seq  # noqa: E402
 from .writer import left_justified  # noqa: E402
 
@@ -46,15 +47,7 @@ L_IN_OVERFLOW = 9
 L_OUT_UNDERFLOW = 10
 L_LEN = 16
 
-PA_CONTINUE = 0
-PA_COMPLETE = 1
-PA_INPUT_OVERFLOW = 0x2
-PA_OUTPUT_UNDERFLOW = 0x4
-
-CALLBACK_SIGNATURE = types.intc(types.voidptr, types.voidptr, types.ulong, types.voidptr, types.ulong, types.voidptr)
-
-
-@njit(nogil=True)
+@njit(nogil=True, error_model="numpy")
 def loop_core(in_addr, out_addr, frames, status_flags, ctl_addr):
     """One callback on raw addresses: play, record, count; returns paContinue or paComplete."""
     ctl = carray(address_to_voidptr(ctl_addr), (L_LEN,), np.int64)
@@ -110,10 +103,15 @@ def _callback(input_ptr, output_ptr, frames, time_info, status_flags, user_data)
 _BUILT = {}
 
 
+def compile_loop_callback():
+    """Compile the play-and-record callback as a numba ``cfunc`` (``error_model="numpy"``: no raising path)."""
+    return cfunc(CALLBACK_SIGNATURE, nopython=True, error_model="numpy")(_callback)
+
+
 def build_loop_callback():
     """The compiled PortAudio callback (a numba ``CFunc``; ``.address`` goes to PortAudio)."""
     if "cfunc" not in _BUILT:
-        _BUILT["cfunc"] = cfunc(CALLBACK_SIGNATURE, nopython=True)(_callback)
+        _BUILT["cfunc"] = compile_loop_callback()
     return _BUILT["cfunc"]
 
 

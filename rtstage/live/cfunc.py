@@ -29,7 +29,7 @@ import os
 
 import numba
 import numpy as np
-from numba import carray, njit, types
+from numba import carray, njit
 
 from .. import kernel as K
 from . import shared as S
@@ -37,17 +37,16 @@ from . import packing, timing
 from ._ptr import address_to_voidptr, voidptr_to_address
 from .sources import fill_generated
 
-PA_CONTINUE = 0
-PA_COMPLETE = 1
-
-PA_INPUT_UNDERFLOW = 0x1
-PA_INPUT_OVERFLOW = 0x2
-PA_OUTPUT_UNDERFLOW = 0x4
-PA_OUTPUT_OVERFLOW = 0x8
-PA_PRIMING_OUTPUT = 0x10
-
-CALLBACK_SIGNATURE = types.intc(types.voidptr, types.voidptr, types.ulong, types.voidptr, types.ulong, types.voidptr)
-"""``int (const void *in, void *out, unsigned long frames, const PaStreamCallbackTimeInfo *, PaStreamCallbackFlags, void *user)``."""
+from .pa_abi import (
+    CALLBACK_SIGNATURE,
+    PA_COMPLETE,
+    PA_CONTINUE,
+    PA_INPUT_OVERFLOW,
+    PA_INPUT_UNDERFLOW,
+    PA_OUTPUT_OVERFLOW,
+    PA_OUTPUT_UNDERFLOW,
+    PA_PRIMING_OUTPUT,
+)
 
 
 @njit(nogil=True, inline="always", error_model="numpy")

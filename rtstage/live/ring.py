@@ -32,6 +32,14 @@ from numba import njit
 from ._ptr import fence
 
 
+@njit(nogil=True, cache=True, error_model="numpy", inline="always")
+def _free(ctl, head_at, tail_at, cap_at):
+    """Producer: ``(head, frames free)``; the consumer's tail is read once, after a fence."""
+    head = ctl[head_at]
+    fence()
+    return head, ctl[cap_at] - (head - ctl[tail_at])
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
 def reserve(ctl, on_at, head_at, tail_at, dropped_at, cap_at, nframes):
     """Producer: the head (frames written so far) if ``nframes`` frames fit whole, else -1.
@@ -42,14 +50,28 @@ def reserve(ctl, on_at, head_at, tail_at, dropped_at, cap_at, nframes):
     """
     if ctl[on_at] == 0 or nframes == 0:
         return -1
-    cap = ctl[cap_at]
-    head = ctl[head_at]
-    fence()
-    tail = ctl[tail_at]
-    if cap - (head - tail) < nframes:
+    head, free = _free(ctl, head_at, tail_at, cap_at)
+    if free < nframes:
         ctl[dropped_at] += nframes
         return -1
     return head
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def reserve_in_place(ctl, on_at, head_at, tail_at, cap_at, nframes):
+    """Producer: the ring row from which ``nframes`` frames can be written in place, without wrapping, else -1.
+
+    -1 also when the ring is off or ``nframes`` is 0; nothing is counted as
+    dropped (the caller falls back to :func:`reserve` and a copy).  Publish
+    the rows with :func:`advance` after writing them.
+    """
+    if ctl[on_at] == 0 or nframes == 0:
+        return -1
+    head, free = _free(ctl, head_at, tail_at, cap_at)
+    slot = head % ctl[cap_at]
+    if free < nframes or slot + nframes > ctl[cap_at]:
+        return -1
+    return slot
 
 
 @njit(nogil=True, cache=True, error_model="numpy")

@@ -272,6 +272,11 @@ def publish_params(ctl, pending_ip, pending_fp, new_ip, new_fp):
     return seq + 2
 
 
+def publish_into(block, iparams, fparams):
+    """:func:`publish_params` into ``block``'s seqlock block (an :class:`rtstage.engine.Engine` publish hook)."""
+    return publish_params(block.ctl, block.pending_ip, block.pending_fp, iparams, fparams)
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
 def applied(ctl):
     """(sequence number, sample index) of the parameters the callback last took, read in order."""
@@ -343,23 +348,13 @@ def meter_ring_reserve(ctl, nframes):
     After writing rows ``slot .. slot + nframes - 1`` (the kernel's taps point
     there), publish them with :func:`meter_ring_commit`.
     """
-    if ctl[C_METER_ON] == 0 or nframes == 0:
-        return -1
-    cap = ctl[C_MRING_FRAMES]
-    head = ctl[C_MRING_HEAD]
-    fence()
-    tail = ctl[C_MRING_TAIL]
-    slot = head % cap
-    if cap - (head - tail) < nframes or slot + nframes > cap:
-        return -1
-    return slot
+    return R.reserve_in_place(ctl, C_METER_ON, C_MRING_HEAD, C_MRING_TAIL, C_MRING_FRAMES, nframes)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
 def meter_ring_commit(ctl, nframes):
     """Producer (callback): publish ``nframes`` frames written in place after :func:`meter_ring_reserve`."""
-    fence()
-    ctl[C_MRING_HEAD] = ctl[C_MRING_HEAD] + nframes
+    R.advance(ctl, C_MRING_HEAD, ctl[C_MRING_HEAD], nframes)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")

@@ -15,11 +15,15 @@ from . import shared as S
 
 
 class ControlSurface:
-    """Mixin of :class:`~rtstage.live.supervisor.LiveEngine`: needs ``engine``, ``block``, ``settings``."""
+    """Mixin of :class:`~rtstage.live.supervisor.LiveEngine` and :class:`~rtstage.net.netengine.NetEngine`.
+
+    Needs ``engine``, ``block``, ``settings``, ``samplerate``, ``blocksize``,
+    ``applied_log`` and ``_logged_seq``.
+    """
 
     def _publish_params(self, iparams, fparams):
         """The engine's publish hook: the seqlock write into the shared block; returns the sequence number."""
-        return S.publish_params(self.block.ctl, self.block.pending_ip, self.block.pending_fp, iparams, fparams)
+        return S.publish_into(self.block, iparams, fparams)
 
     def set_settings(self, settings):
         """Publish new settings; they take effect at the next block boundary.

@@ -46,6 +46,7 @@ from ..errors import RtstageError
 from ..live import shared as S
 from ..live import timing as T
 from ..live.sources import fill_generated
+from ..live.surface import ControlSurface
 from . import _native as N
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
 
@@ -188,19 +189,16 @@ def _send_loop(ctl, clock_id, paced, q0, r0, rate, fpp, net_ring, words, pkt, fd
             return
 
 
-def _shared_block(engine, max_frames, meter_frames):
+def _shared_block(engine, max_frames, meter_frames, publish):
     """A :class:`rtstage.live.shared.SharedBlock` holding ``engine``'s kernel state, which the engine then runs on.
 
     The control layer (:class:`rtstage.control.live_target.LiveTarget`: seqlock,
     ``applied``, counters) and the meters (:class:`rtstage.live.meterthread.MeterThread`:
     the meter ring) then drive and read this engine exactly as they do a live one.
+    ``publish`` is the engine's publish hook (the seqlock write into this block).
     """
     block = S.SharedBlock(engine.nchannels, engine.width, max_frames, 0, 0, meter_frames)
-
-    def publish(iparams, fparams):
-        return S.publish_params(block.ctl, block.pending_ip, block.pending_fp, iparams, fparams)
-
-    engine.use_memory(block.kernel, publish=publish)  # the one engine object model, as in the live engine
+    engine.use_memory(block.kernel, publish=lambda iparams, fparams: publish(block, iparams, fparams))
     block.pending_ip[:] = block.kernel.iparams
     block.pending_fp[:] = block.kernel.fparams
     return block
@@ -265,7 +263,7 @@ class _TapThread:
         return summary
 
 
-class NetEngine:
+class NetEngine(ControlSurface):
     """An engine with no audio device: paced by a clock, or by the arrival of an RTP stream.
 
     Parameters
@@ -319,6 +317,8 @@ class NetEngine:
         self._sock = None
         self._start_time = None
         self._stop_event = threading.Event()
+        self._logged_seq = 0
+        self.applied_log = []
 
     @property
     def clock_name(self):
@@ -366,7 +366,7 @@ class NetEngine:
         self.blocksize = self.fpp
         """Frames per block of the clocked thread (the control layer's block period)."""
         meter_frames = max(rate, 8 * MAX_BLOCK_FRAMES) if self.meters_on else 0
-        self.block = _shared_block(self.engine, max(self.fpp, MAX_BLOCK_FRAMES), meter_frames)
+        self.block = _shared_block(self.engine, max(self.fpp, MAX_BLOCK_FRAMES), meter_frames, S.publish_into)
         nch = self.channels
         dtype = self.engine.dtype
         self.ctl = np.zeros(C_LEN, dtype=np.int64)
@@ -586,38 +586,7 @@ class NetEngine:
             self._sock = None
         return status
 
-    # --- control surface (rtstage.control.live_target.LiveTarget) -------------------------
-    def set_settings(self, settings):
-        """Publish new settings; the clocked thread takes them at its next block.  Returns the sequence number.
-
-        The engine (:meth:`rtstage.engine.Engine.apply`) resolves and checks them and publishes through the
-        shared block's seqlock.
-        """
-        seq = self.engine.apply(settings)
-        self.settings = self.engine.settings
-        return int(seq)
-
-    def last_applied(self):
-        """(sequence number, sample index) of the settings the clocked thread took last."""
-        seq, frame = S.applied(self.block.ctl)
-        return int(seq), int(frame)
-
-    def block_waiter(self):
-        """A :class:`~rtstage.live.handoff.BlockWaiter` on this engine's blocks (short sleeps: no callback stamps)."""
-        from ..live.handoff import BlockWaiter
-
-        return BlockWaiter(self.block.ctl, self.samplerate, self.blocksize)
-
-    def wait_applied(self, seq, timeout_s=2.0):
-        """Sample index at which settings ``seq`` took effect, or None after ``timeout_s``."""
-        deadline = time.monotonic() + timeout_s
-        while True:
-            applied_seq, frame = self.last_applied()
-            if applied_seq >= seq:
-                return frame
-            if time.monotonic() >= deadline:
-                return None
-            time.sleep(0.001)
+    # --- control surface: rtstage.live.surface.ControlSurface (set_settings, wait_applied, ...) ---------
 
     def meters(self):
         """The latest meter snapshot (levels, noise, true peak, loudness) with the per-stream figures."""

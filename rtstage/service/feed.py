@@ -26,11 +26,11 @@ needs a restart, and the rest of the reload still applies.
 
 import math
 import os
-import tomllib
 from dataclasses import dataclass, field
 
 from .. import params
 from ..errors import RtstageError
+from ..files.tomlread import load_toml
 
 # ----------------------------------------------------------------------------- value checks
 
@@ -238,18 +238,7 @@ def load_feed(path):
     RtstageError
         ``feed PATH: KEY: reason`` for the first problem found.
     """
-    try:
-        with open(path, "rb") as f:
-            data = tomllib.load(f)
-    except FileNotFoundError:
-        raise RtstageError(f"feed {path}: no such file") from None
-    except OSError as exc:
-        raise RtstageError(f"feed {path}: cannot read ({exc.strerror})") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise RtstageError(f"feed {path}: not valid TOML ({exc})") from None
-    except UnicodeDecodeError as exc:
-        raise RtstageError(f"feed {path}: not UTF-8 text (byte {exc.start})") from None
-    return check_feed(data, path)
+    return check_feed(load_toml(path, f"feed {path}"), path)
 
 
 def check_feed(data, path="<feed>"):

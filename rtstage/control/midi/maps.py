@@ -5,11 +5,11 @@ Part of :mod:`rtstage.control.midi` (its notes describe the map format and the m
 
 import glob
 import os
-import tomllib
 from dataclasses import dataclass
 
 from ... import params
 from ...errors import RtstageError
+from ...files.tomlread import load_toml, TomlFileMissing
 
 
 MODES = ("absolute", "relative-twos", "relative-offset", "relative-signmag", "14bit", "toggle")
@@ -232,15 +232,8 @@ def load_map(name_or_path):
     if not (path.endswith(".toml") or os.sep in path):
         path = os.path.join(PRESET_MIDI_DIR, name_or_path + ".toml")
     try:
-        with open(path, "rb") as f:
-            data = tomllib.load(f)
-    except FileNotFoundError:
+        data = load_toml(path, f"MIDI map {path}")
+    except TomlFileMissing:
         known = ", ".join(sorted(os.path.basename(p)[:-5] for p in glob.glob(os.path.join(PRESET_MIDI_DIR, "*.toml"))))
         raise RtstageError(f"no MIDI map {name_or_path!r} (known: {known}; or give a path)") from None
-    except OSError as exc:
-        raise RtstageError(f"cannot read MIDI map {path}: {exc.strerror}") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise RtstageError(f"MIDI map {path}: not valid TOML ({exc})") from None
-    except UnicodeDecodeError as exc:
-        raise RtstageError(f"MIDI map {path}: not UTF-8 text (byte {exc.start})") from None
     return map_from_dict(data, where=f"MIDI map {path}")
