@@ -139,19 +139,8 @@ class LiveTarget(ControlTarget, Startable):
             self._cond.notify_all()
 
     # -- ControlTarget ------------------------------------------------------------------------
-    def get(self):
-        with self._lock:
-            return dict(self._values)
-
     def submit(self, values):
-        self.check(values)
-        with self._cond:
-            self._values.update(values)
-            self._pending.update(values)
-            self._ticket += 1
-            self._pending_ticket = self._ticket
-            ticket = self._ticket
-        self.note_caution(values, ticket)
+        ticket, _ = self._queue(values, lambda t: setattr(self, "_pending_ticket", t))
         self._try_publish()
         self._wake.set()
         return ticket

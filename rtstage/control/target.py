@@ -97,8 +97,25 @@ class ControlTarget:
         return (self._cautions or {}).get(ticket)
 
     def get(self):
-        """Current value of every parameter, by name."""
-        raise NotImplementedError
+        """Current value of every parameter, by name (targets keep ``_values`` under ``_lock``)."""
+        with self._lock:
+            return dict(self._values)
+
+    def _queue(self, values, under_lock=None):
+        """Check ``values``, merge them into the current and pending values and give them the next ticket.
+
+        ``under_lock(ticket)``, when given, runs with ``_cond`` held and its result is returned with the
+        ticket: ``(ticket, result)``.  Logs the hearing-safety caution when the change calls for it.
+        """
+        self.check(values)
+        with self._cond:
+            self._values.update(values)
+            self._pending.update(values)
+            self._ticket += 1
+            ticket = self._ticket
+            result = under_lock(ticket) if under_lock is not None else None
+        self.note_caution(values, ticket)
+        return ticket, result
 
     def check(self, values):
         """Raise :class:`RtstageError` for valid changes this target cannot take (a word that does not fit)."""
@@ -193,7 +210,7 @@ class EngineTarget(ControlTarget):
         self._values.update(params.values_from_settings(engine.settings))
         self._start_seed = engine.settings.seed
         self._pending = {}
-        self._seq = 0
+        self._ticket = 0
         self._applied_ticket = 0
         self._applied_frame = {}
         self._lock = threading.Lock()
@@ -203,19 +220,8 @@ class EngineTarget(ControlTarget):
         self._meters = self._meter_frame(None)
 
     # -- ControlTarget ------------------------------------------------------------------------
-    def get(self):
-        with self._lock:
-            return dict(self._values)
-
     def submit(self, values):
-        self.check(values)
-        with self._cond:
-            self._values.update(values)
-            self._pending.update(values)
-            self._seq += 1
-            seq = self._seq
-            running = self.running
-        self.note_caution(values, seq)
+        seq, running = self._queue(values, lambda ticket: self.running)
         if not running:
             with self._engine_lock:
                 self._apply_pending()
@@ -230,7 +236,7 @@ class EngineTarget(ControlTarget):
             "samplerate": self.engine.samplerate,
             "channels": self.engine.channels,
             "blocksize": self.blocksize,
-            "container_bits": self.engine.format_bits,
+            "container_bits": self.engine.container_bits,
             "uptime_s": round(time.monotonic() - self._t0, 3),
             "xruns": self.xruns,
             "cpu_load": round(self.cpu_load, 4),
@@ -248,7 +254,7 @@ class EngineTarget(ControlTarget):
         """Apply queued changes at the engine's current frame (engine lock held)."""
         with self._cond:
             pending, self._pending = self._pending, {}
-            seq = self._seq
+            seq = self._ticket
         if pending:
             frame = self.engine.frame
             self.engine.apply(params.settings_with(self.engine.settings, pending))

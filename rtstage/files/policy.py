@@ -439,14 +439,7 @@ class OutputPlan:
 
     def discard(self):
         """Remove every temporary file and every folder this plan created (on any failure)."""
-        for out in self._all_files():
-            if out.tmp is not None:
-                try:
-                    os.unlink(out.tmp)
-                except OSError:
-                    pass
-                _forget(out.tmp)
-                out.tmp = None
+        self.finish()
         for out in self.outputs:
             for created in reversed(out.created):
                 try:
@@ -566,7 +559,7 @@ class OutputPlan:
         self._committed_folders()
 
     def finish(self):
-        """Remove the temporary files of outputs that were declared but not written."""
+        """Remove the temporary files still held: those of outputs declared but not written (or, on failure, all)."""
         for out in self._all_files():
             if out.tmp is not None:
                 try:
