@@ -5,7 +5,7 @@ Public API
 EngineSettings
     Word length, dither, shaper, seed and gain; validated.
 Engine
-    Prepared requantizer: ``Engine(settings, nchannels, samplerate).process(block)``.
+    Prepared requantizer: ``Engine(settings, channels, samplerate).process(block)``.
 render_file
     Requantize one sound file into another (the ``rtstage render`` command).
 DITHER_KINDS, BUILTIN_SHAPERS, get_shaper

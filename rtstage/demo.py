@@ -29,8 +29,8 @@ def db_to_amplitude(level_db):
     return 10.0 ** (np.asarray(level_db, dtype=np.float64) / 20.0)
 
 
-def overnight_programme(samplerate=48000, seconds=20.0, nchannels=2):
-    """Generate the demo programme, float64 of shape (frames, nchannels).
+def overnight_programme(samplerate=48000, seconds=20.0, channels=2):
+    """Generate the demo programme, float64 of shape (frames, channels).
 
     The first 40 % is the quiet chord (with a slow swell), the next 35 % a
     fade in dB down to ``FADE_FLOOR_DBFS`` and then silence, the last 25 % the
@@ -38,7 +38,7 @@ def overnight_programme(samplerate=48000, seconds=20.0, nchannels=2):
     """
     n = int(round(seconds * samplerate))
     t = np.arange(n) / samplerate
-    x = np.zeros((n, nchannels))
+    x = np.zeros((n, channels))
     n_chord = int(0.40 * n)
     n_fade = int(0.35 * n)
     envelope = np.zeros(n)
@@ -46,7 +46,7 @@ def overnight_programme(samplerate=48000, seconds=20.0, nchannels=2):
     envelope[:n_chord] = swell * db_to_amplitude(CHORD_LEVEL_DBFS)
     fade_db = np.linspace(CHORD_LEVEL_DBFS, FADE_FLOOR_DBFS, n_fade)
     envelope[n_chord : n_chord + n_fade] = swell[-1] * db_to_amplitude(fade_db)
-    for c in range(nchannels):
+    for c in range(channels):
         chord = sum(np.sin(2 * np.pi * (f + 0.3 * c) * t) for f in CHORD_HZ) / len(CHORD_HZ)
         x[:, c] = envelope * chord
         deep = np.arange(n) >= n_chord + n_fade

@@ -260,51 +260,51 @@ _LOW32 = np.uint64(0xFFFFFFFF)
 _DENORMAL_GUARD = 1e-30
 
 
-def container_width(container):
-    """Bits of the integer the words of a ``container``-bit container are stored in: 16 for 16, else 32.
+def container_bits_of(format_bits):
+    """``container_bits``: bits of the integer the words of a ``format_bits``-bit sample format travel in: 16 for 16, else 32.
 
-    Words of a 24-bit container (and of a 32-bit one) sit left-justified in
-    int32, so ``out_shift = container_width(container) - bits``.
+    Words of a 24-bit format (and of a 32-bit one) sit left-justified in
+    int32, so ``out_shift = container_bits_of(format_bits) - bits``.
     """
-    return 16 if container == 16 else 32
+    return 16 if format_bits == 16 else 32
 
 
-def word_dtype(container):
-    """numpy dtype of the output words ``y`` for ``container`` (a width, 16 or 32, gives the same)."""
-    return np.int16 if container_width(container) == 16 else np.int32
+def word_dtype(format_bits):
+    """numpy dtype of the output words ``y`` for ``format_bits`` (``container_bits``, 16 or 32, gives the same)."""
+    return np.int16 if container_bits_of(format_bits) == 16 else np.int32
 
 
 class KernelState:
-    """Preallocated parameter and state arrays for ``nchannels`` channels.
+    """Preallocated parameter and state arrays for ``channels`` channels.
 
     Attributes
     ----------
     iparams, fparams : ndarray
         Parameters read by the kernel at the start of every block.
-    hist : ndarray, shape (nchannels, HIST_LEN)
+    hist : ndarray, shape (channels, HIST_LEN)
         Circular error history of each channel's shaper.
-    counts : ndarray, shape (nchannels, CNT_LEN)
+    counts : ndarray, shape (channels, CNT_LEN)
         Clipped and non-finite sample counts.
     clock : ndarray
         Next sample index, history slot, frames left in the gain ramp.
     ramp : ndarray
         Current gain, step and target of the gain ramp.
-    rng_words : ndarray, shape (nchannels * RNG_RING_BLOCKS, 4)
+    rng_words : ndarray, shape (channels * RNG_RING_BLOCKS, 4)
         Ring of Philox blocks computed ahead of use (values never depend on it).
     rng_tag : ndarray, shape (RNG_TAG_LEN,)
         Frame and seed the ring is valid for, so that a block continuing the
         previous one reuses it.
     """
 
-    def __init__(self, nchannels):
-        self.nchannels = int(nchannels)
+    def __init__(self, channels):
+        self.channels = int(channels)
         self.iparams = np.zeros(IP_LEN, dtype=np.int64)
         self.fparams = np.zeros(FP_LEN, dtype=np.float64)
-        self.hist = np.zeros((self.nchannels, HIST_LEN), dtype=np.float64)
-        self.counts = np.zeros((self.nchannels, CNT_LEN), dtype=np.int64)
+        self.hist = np.zeros((self.channels, HIST_LEN), dtype=np.float64)
+        self.counts = np.zeros((self.channels, CNT_LEN), dtype=np.int64)
         self.clock = np.zeros(CLK_LEN, dtype=np.int64)
         self.ramp = np.zeros(RAMP_LEN, dtype=np.float64)
-        self.rng_words = np.zeros((self.nchannels * RNG_RING_BLOCKS, 4), dtype=np.uint64)
+        self.rng_words = np.zeros((self.channels * RNG_RING_BLOCKS, 4), dtype=np.uint64)
         self.rng_tag = np.full(RNG_TAG_LEN, -1, dtype=np.int64)
 
     def arrays(self):
@@ -1042,13 +1042,13 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
 
     Parameters
     ----------
-    x : ndarray, shape (>= nframes, nchannels), float32 or float64
+    x : ndarray, shape (>= nframes, channels), float32 or float64
         Input in full-scale units.
-    y : ndarray, shape (>= nframes, nchannels), integer
+    y : ndarray, shape (>= nframes, channels), integer
         Output words in container units: ``q << out_shift`` in the
         requantized monitor mode, otherwise the monitored signal (see the
         module notes on monitor modes, mute and auto-mute).
-    vq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), float64
+    vq : ndarray, shape (>= nframes, channels) or (0, channels), float64
         Meter tap: receives the input as it enters the quantizer, ``x·gain``
         in full-scale units (non-finite samples as replaced), so that a meter
         sees exactly the values the words were made from, gain ramps
@@ -1057,7 +1057,7 @@ def process_block(x, y, vq, nframes, iparams, fparams, hist, counts, clock, ramp
         Frames to process; 0 is allowed.
     iparams, fparams, hist, counts, clock, ramp, rng_words, rng_tag : ndarray
         Parameters and state, see :class:`KernelState`; state is updated in place.
-    yq : ndarray, shape (>= nframes, nchannels) or (0, nchannels), integer, optional
+    yq : ndarray, shape (>= nframes, channels) or (0, channels), integer, optional
         Meter words: the requantized words ``q << out_shift`` whatever the
         monitor mode, mute or auto-mute, so that meters measure the real
         requantized output.  Omitted or no rows: off.

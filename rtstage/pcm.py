@@ -31,8 +31,8 @@ def bytes_per_sample(fmt):
     return INPUT_FORMATS[fmt]
 
 
-def decode(buf, fmt, nchannels):
-    """Decode whole frames of raw PCM ``buf`` (bytes-like) to float64 (frames, nchannels)."""
+def decode(buf, fmt, channels):
+    """Decode whole frames of raw PCM ``buf`` (bytes-like) to float64 (frames, channels)."""
     if fmt == "f32le":
         x = np.frombuffer(buf, dtype="<f4").astype(np.float64)
     elif fmt == "f64le":
@@ -48,11 +48,11 @@ def decode(buf, fmt, nchannels):
         x = v * 2.0**-23
     else:
         raise RtstageError(f"unknown input format '{fmt}' (known: {', '.join(INPUT_FORMATS)})")
-    return x.reshape(-1, nchannels)
+    return x.reshape(-1, channels)
 
 
-def engine_container(fmt):
-    """Engine container width (16, 24 or 32) that produces words for output format ``fmt``."""
+def engine_format_bits(fmt):
+    """Sample format (16, 24 or 32 bits) of the engine whose words output format ``fmt`` carries."""
     return OUTPUT_FORMATS[fmt]
 
 

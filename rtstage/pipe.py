@@ -44,7 +44,7 @@ def pipe_stream(engine, instream, outstream, in_format, out_format, blocksize=10
     ----------
     engine : rtstage.engine.Engine
         Prepared engine; its channel count is the stream's, its container
-        must be the output format's (:func:`rtstage.pcm.engine_container`).
+        must be the output format's (:func:`rtstage.pcm.engine_format_bits`).
     instream, outstream : binary streams
         ``readinto``/``write``/``flush``, e.g. ``sys.stdin.buffer`` and ``sys.stdout.buffer``.
     in_format, out_format : str
@@ -56,8 +56,8 @@ def pipe_stream(engine, instream, outstream, in_format, out_format, blocksize=10
     -------
     PipeResult
     """
-    nchannels = engine.nchannels
-    frame_bytes = pcm.bytes_per_sample(in_format) * nchannels
+    channels = engine.channels
+    frame_bytes = pcm.bytes_per_sample(in_format) * channels
     buf = bytearray(frame_bytes * blocksize)
     view = memoryview(buf)
     carry = 0
@@ -67,7 +67,7 @@ def pipe_stream(engine, instream, outstream, in_format, out_format, blocksize=10
             have = carry + got
             whole = have - have % frame_bytes
             if whole:
-                x = pcm.decode(view[:whole], in_format, nchannels)
+                x = pcm.decode(view[:whole], in_format, channels)
                 outstream.write(pcm.encode(engine.process(x), out_format))
             carry = have - whole
             if carry:

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import soundfile as sf
 
-from .engine import Engine, container_bits
+from .engine import Engine, smallest_format_bits
 from .engine.automation import AutomationPlayer, process_with_automation
 from .errors import RtstageError
 from .log import log
@@ -47,7 +47,7 @@ class SubtypeInfo:
     """How engine words become samples of one libsndfile subtype."""
 
     max_bits: int
-    container: int
+    format_bits: int
     float_out: object = None
 
 
@@ -65,15 +65,15 @@ SUBTYPES = {
 
 def default_subtype(bits):
     """PCM_16 for words of up to 16 bits, PCM_24 above: the smallest container's subtype."""
-    return {16: "PCM_16", 24: "PCM_24"}[container_bits(bits)]
+    return {16: "PCM_16", 24: "PCM_24"}[smallest_format_bits(bits)]
 
 
-def check_stream_shape(samplerate, nchannels, what):
+def check_stream_shape(samplerate, channels, what):
     """Raise RtstageError when a sample rate or channel count is outside the engine's range."""
     if not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE:
         raise RtstageError(f"{what}: sample rate {samplerate} Hz is outside {MIN_SAMPLERATE}..{MAX_SAMPLERATE} Hz")
-    if not 1 <= nchannels <= MAX_CHANNELS:
-        raise RtstageError(f"{what}: {nchannels} channels; rtstage handles 1..{MAX_CHANNELS}")
+    if not 1 <= channels <= MAX_CHANNELS:
+        raise RtstageError(f"{what}: {channels} channels; rtstage handles 1..{MAX_CHANNELS}")
 
 
 def words_to_float(words):
@@ -82,8 +82,8 @@ def words_to_float(words):
     return words * scale
 
 
-def render_array(x, samplerate, settings, blocksize=DEFAULT_BLOCKSIZE, container=None, start_frame=0):
-    """Requantize a float array of shape (frames, nchannels) in blocks.
+def render_array(x, samplerate, settings, blocksize=DEFAULT_BLOCKSIZE, format_bits=None, start_frame=0):
+    """Requantize a float array of shape (frames, channels) in blocks.
 
     Returns ``(words, engine)``: the words (int16 or left-justified int32) and
     the engine, whose settings (with the seed actually used) and counters can
@@ -92,7 +92,7 @@ def render_array(x, samplerate, settings, blocksize=DEFAULT_BLOCKSIZE, container
     x = np.asarray(x)
     if x.ndim == 1:
         x = x[:, None]
-    engine = Engine(settings, x.shape[1], samplerate, container=container, start_frame=start_frame)
+    engine = Engine(settings, x.shape[1], samplerate, format_bits=format_bits, start_frame=start_frame)
     words = np.empty(x.shape, dtype=engine.dtype)
     step = max(1, int(blocksize))
     for start in range(0, x.shape[0], step):
@@ -261,7 +261,7 @@ def render_file(
             plan = OutputPlan(f"rendering {input_path} to {output_path}", inputs=[input_path], overwrite=overwrite)
             plan.add_file(output_path, "output", size_bytes=estimated_bytes(infile.frames, infile.channels, subtype, fmt))
             plan.check()
-        engine = Engine(settings, infile.channels, infile.samplerate, container=info.container)
+        engine = Engine(settings, infile.channels, infile.samplerate, format_bits=info.format_bits)
         meter = meters(engine) if meters else None
         player = AutomationPlayer(automation) if automation else None
         carried = riff.carried_chunks(input_path, layout) if layout is not None else []

@@ -217,10 +217,10 @@ def reference_requantize(x, bits, dither="tpdf", coefs=(), seed=0, gain_db=0.0, 
     return {"q": q_out, "err": err_out, "v": v_out, "clipped": clipped, "nonfinite": nonfinite, "history": final_history}
 
 
-def pack_words(q, bits, container=None):
+def pack_words(q, bits, format_bits=None):
     """Left-justify B-bit words in their container: int16 (B <= 16) or int32 (shift 32 - B)."""
-    if container is None:
-        container = 16 if bits <= 16 else 24
-    width = 16 if container == 16 else 32
-    dtype = np.int16 if container == 16 else np.int32
+    if format_bits is None:
+        format_bits = 16 if bits <= 16 else 24
+    width = 16 if format_bits == 16 else 32
+    dtype = np.int16 if format_bits == 16 else np.int32
     return (np.asarray(q, dtype=np.int64) << (width - bits)).astype(dtype)

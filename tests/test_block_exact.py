@@ -26,15 +26,15 @@ SHAPERS = tuple(BUILTIN_SHAPERS)
 NFRAMES = 700
 
 
-def _signal(seed, nframes, nchannels, dtype=np.float64):
+def _signal(seed, nframes, channels, dtype=np.float64):
     """A hard test signal: sine plus noise, overload bursts, NaN/Inf, tiny and subnormal values."""
     rng = np.random.default_rng(seed)
     n = np.arange(nframes)[:, None]
-    x = 0.6 * np.sin(2 * np.pi * (0.01 + 0.003 * np.arange(nchannels)) * n) + 1e-3 * rng.standard_normal((nframes, nchannels))
+    x = 0.6 * np.sin(2 * np.pi * (0.01 + 0.003 * np.arange(channels)) * n) + 1e-3 * rng.standard_normal((nframes, channels))
     burst = rng.integers(0, max(1, nframes - 40))
     x[burst : burst + 30] *= 3.0  # overload
     for value in (np.nan, np.inf, -np.inf, 1e-310, 1e-30):
-        where = rng.random((nframes, nchannels)) < 0.004
+        where = rng.random((nframes, channels)) < 0.004
         x[where] = value
     return x.astype(dtype)
 
@@ -66,10 +66,10 @@ def _run_split(engine, x, sizes, reuse_out=False):
     return np.concatenate(pieces, axis=0)
 
 
-def _assert_split_invariant(settings_, nchannels, x, sizes, reuse_out=False):
-    whole = Engine(settings_, nchannels, 48000)
+def _assert_split_invariant(settings_, channels, x, sizes, reuse_out=False):
+    whole = Engine(settings_, channels, 48000)
     expected = whole.process(x)
-    split = Engine(settings_, nchannels, 48000)
+    split = Engine(settings_, channels, 48000)
     got = _run_split(split, x, sizes, reuse_out)
     assert_array_equal(got, expected)
     for a, b in zip(_state_snapshot(split), _state_snapshot(whole)):
@@ -83,16 +83,16 @@ block_sizes = st.lists(st.one_of(st.just(0), st.just(1), st.integers(0, 5), st.i
 @given(
     dither=st.sampled_from(DITHERS),
     shaper=st.sampled_from(SHAPERS),
-    nchannels=st.sampled_from((1, 2, 3, 6)),
+    channels=st.sampled_from((1, 2, 3, 6)),
     bits=st.sampled_from((2, 8, 16, 20, 24)),
     signal_seed=st.integers(0, 2**32 - 1),
     dither_seed=st.integers(0, 2**64 - 1),
     sizes=block_sizes,
     float32=st.booleans(),
 )
-def test_random_splits_are_bit_identical(dither, shaper, nchannels, bits, signal_seed, dither_seed, sizes, float32):
-    x = _signal(signal_seed, NFRAMES, nchannels, np.float32 if float32 else np.float64)
-    _assert_split_invariant(_settings(dither, shaper, dither_seed, bits), nchannels, x, sizes)
+def test_random_splits_are_bit_identical(dither, shaper, channels, bits, signal_seed, dither_seed, sizes, float32):
+    x = _signal(signal_seed, NFRAMES, channels, np.float32 if float32 else np.float64)
+    _assert_split_invariant(_settings(dither, shaper, dither_seed, bits), channels, x, sizes)
 
 
 @pytest.mark.parametrize("dither", DITHERS)
@@ -130,7 +130,7 @@ class TestAgainstReference:
     """
 
     @pytest.mark.parametrize(
-        "dither,shaper,bits,nchannels,start_frame",
+        "dither,shaper,bits,channels,start_frame",
         (
             ("tpdf", "wannamaker-f9", 16, 2, 0),
             ("tpdf", "lvw-ie9", 12, 1, 123457),
@@ -141,10 +141,10 @@ class TestAgainstReference:
             ("tpdf", "flat", 24, 2, 99),
         ),
     )
-    def test_words_counts_and_history(self, dither, shaper, bits, nchannels, start_frame):
-        x = _signal(bits + nchannels, 400, nchannels)
+    def test_words_counts_and_history(self, dither, shaper, bits, channels, start_frame):
+        x = _signal(bits + channels, 400, channels)
         seed = 0xC0FFEE + bits
-        engine = Engine(_settings(dither, shaper, seed, bits), nchannels, 48000, start_frame=start_frame)
+        engine = Engine(_settings(dither, shaper, seed, bits), channels, 48000, start_frame=start_frame)
         y = engine.process(x)
         r = ref.reference_requantize(
             x, bits, dither, BUILTIN_SHAPERS[shaper].coefs, seed=seed, gain_db=-0.5, start_frame=start_frame
@@ -163,19 +163,19 @@ class TestAgainstReference:
 @given(
     dither=st.sampled_from(DITHERS),
     shaper=st.sampled_from(SHAPERS),
-    nchannels=st.sampled_from((1, 2, 4)),
+    channels=st.sampled_from((1, 2, 4)),
     bits=st.integers(2, 24),
     signal_seed=st.integers(0, 2**32 - 1),
     dither_seed=st.integers(0, 2**64 - 1),
     start_frame=st.integers(0, 2**62),
     dither_scale=st.sampled_from((0.5, 1.0, 2.0)),
 )
-def test_random_cases_equal_reference(dither, shaper, nchannels, bits, signal_seed, dither_seed, start_frame, dither_scale):
+def test_random_cases_equal_reference(dither, shaper, channels, bits, signal_seed, dither_seed, start_frame, dither_scale):
     # Same comparison as TestAgainstReference (same arithmetic order, bit for bit) over random
     # settings, start frames up to 2^62 and amplitude scales.
-    x = _signal(signal_seed, 80, nchannels)
+    x = _signal(signal_seed, 80, channels)
     s = EngineSettings(bits=bits, dither=dither, shaper=shaper, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, accept_unsafe=True)
-    engine = Engine(s, nchannels, 48000, start_frame=start_frame)
+    engine = Engine(s, channels, 48000, start_frame=start_frame)
     y = engine.process(x)
     r = ref.reference_requantize(
         x, bits, dither, BUILTIN_SHAPERS[shaper].coefs, seed=dither_seed, gain_db=-0.5, dither_scale=dither_scale, start_frame=start_frame

@@ -173,7 +173,7 @@ def test_fuzz_while_running_keeps_server_up_and_words_identical():
     assert sum(len(r["reasons"]) for r in results) > 0  # the drop path was taken
     assert noop_sets_applied > 0  # accepted changes did reach the engine at block boundaries
 
-    reference = Engine(SETTINGS, nchannels=2, samplerate=48000)
+    reference = Engine(SETTINGS, channels=2, samplerate=48000)
     ref = np.concatenate([reference.process(sine_block(b * 256, 256, 2, 48000)) for b in range(nblocks)])
     np.testing.assert_array_equal(tap, ref)
     assert nblocks > 10

@@ -78,7 +78,7 @@ class TestOperations:
 
     def test_status_fields(self, client, stack):
         status = client.request({"op": "status"})["status"]
-        for key in ("state", "frame", "samplerate", "nchannels", "blocksize", "uptime_s", "xruns", "cpu_load", "seed",
+        for key in ("state", "frame", "samplerate", "channels", "blocksize", "uptime_s", "xruns", "cpu_load", "seed",
                     "settings", "server"):
             assert key in status
         assert status["seed"] == stack.engine.settings.seed and status["server"]["clients"] == 1

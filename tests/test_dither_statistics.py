@@ -130,10 +130,10 @@ class TestChannelIndependence:
     NCHANNELS = 4
     MAX_LAG = 32
 
-    def _words(self, dither, nchannels, seed=4242, nframes=None):
+    def _words(self, dither, channels, seed=4242, nframes=None):
         nframes = self.NFRAMES if nframes is None else nframes
-        engine = Engine(EngineSettings(bits=16, dither=dither, seed=seed, dither_scale=4.0), nchannels, 48000)
-        return engine.process(np.zeros((nframes, nchannels))).astype(np.float64)
+        engine = Engine(EngineSettings(bits=16, dither=dither, seed=seed, dither_scale=4.0), channels, 48000)
+        return engine.process(np.zeros((nframes, channels))).astype(np.float64)
 
     @staticmethod
     def _xcorr(a, b, max_lag):

@@ -18,7 +18,7 @@ def _tone(level_dbfs, seconds, samplerate=48000):
 def test_report_carries_the_output_loudness_and_verdict():
     # EBU Tech 3341 case 1 (stereo 1 kHz at -23 dBFS peak reads -23.0 +- 0.1 LUFS, from memory),
     # requantized to 16 bits: the report's loudness is that of the output words.
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), channels=2, samplerate=48000)
     bank = MeterBank.for_engine(engine, loudness_target=parse_target("ebu-r128"))
     x = _tone(-23.0, 10.0)
     for start in range(0, x.shape[0], 4096):
@@ -29,14 +29,14 @@ def test_report_carries_the_output_loudness_and_verdict():
     assert loud["true_peak_dbtp"] == pytest.approx(-23.0, abs=0.1)
     assert loud["target"]["pass"] is True
     # The same figure as a standalone meter on the output words (scaled to full-scale units).
-    engine2 = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    engine2 = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), channels=2, samplerate=48000)
     meter = LoudnessMeter(2, 48000)
     meter.update(engine2.process(x).astype(np.float64) / 32768.0)
     assert loud["integrated_lufs"] == meter.integrated()["integrated_lufs"]
 
 
 def test_target_fails_when_too_loud_and_display_says_so():
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), channels=2, samplerate=48000)
     bank = MeterBank.for_engine(engine, loudness_target=parse_target("-30:1:-20"))
     x = _tone(-20.0, 5.0)
     bank.update(x, engine.process(x))
@@ -48,7 +48,7 @@ def test_target_fails_when_too_loud_and_display_says_so():
 
 
 def test_handed_over_meter_continues_the_programme():
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), channels=2, samplerate=48000)
     first = MeterBank.for_engine(engine)
     x = _tone(-23.0, 4.0)
     first.update(x, engine.process(x))
@@ -60,7 +60,7 @@ def test_handed_over_meter_continues_the_programme():
 def test_programmes_are_measured_apart():
     # Two programmes back to back, EBU Tech 3341 case 1 tone at -23 dBFS then the same at -30:
     # each reads its own level (+-0.1 LU, the Tech's tolerance).
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), nchannels=2, samplerate=48000)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=3), channels=2, samplerate=48000)
     bank = MeterBank.for_engine(engine)
     first, second = _tone(-23.0, 5.0), _tone(-30.0, 5.0)
     bank.update(first, engine.process(first))

@@ -16,7 +16,7 @@ READING_KEYS = {"unweighted", "a_weighted", "itu468"}
 
 def _engine(**settings):
     settings.setdefault("seed", 5)
-    return Engine(EngineSettings(**settings), nchannels=2, samplerate=SAMPLERATE)
+    return Engine(EngineSettings(**settings), channels=2, samplerate=SAMPLERATE)
 
 
 def _program(nframes, level=0.3, seed=0):
@@ -113,7 +113,7 @@ def test_bit_activity_exposes_truncation_and_container():
     channel = truncated.report()["channels"][0]
     assert (channel["active_bits"], channel["effective_bits"], channel["bit_pattern"]) == (14, 14, "*" * 14 + "00")
 
-    wide = Engine(EngineSettings(bits=16, dither="tpdf", seed=5), nchannels=2, samplerate=SAMPLERATE, container=24)
+    wide = Engine(EngineSettings(bits=16, dither="tpdf", seed=5), channels=2, samplerate=SAMPLERATE, format_bits=24)
     bank = MeterBank.for_engine(wide)
     bank.update(x, wide.process(x))
     channel = bank.report()["channels"][0]

@@ -39,7 +39,7 @@ def _sine(nframes, nch=2, amp=0.5, freq_hz=997.0, phase=0.3):
 
 def _run(settings, x, changes=(), nch=2, blocks=None, requantized=False):
     """Process ``x``; ``changes`` is [(frame, {field: value})] applied at those frames (block boundaries)."""
-    engine = Engine(settings, nchannels=nch, samplerate=SR)
+    engine = Engine(settings, channels=nch, samplerate=SR)
     bounds = sorted({0, x.shape[0], *[f for f, _ in changes], *(blocks or [])})
     pending = dict(changes)
     out, req, vq = [], [], []
@@ -159,7 +159,7 @@ class TestAutoMute:
         nf, z0, z1 = 8000, 1000, 4000
         x = _sine(nf, amp=0.25)
         x[z0:z1, 0] = 0.0  # exact digital zero on channel 0 only
-        eng = Engine(self._settings(), nchannels=2, samplerate=SR)
+        eng = Engine(self._settings(), channels=2, samplerate=SR)
         y = np.zeros((nf, 2), dtype=np.int16)
         muted, hist_zero = [], []
         for n in range(0, nf, 100):

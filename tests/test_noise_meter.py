@@ -29,8 +29,8 @@ def _scipy_weighting_power(name, freqs_hz):
     return np.abs(h[1:]) ** 2 / np.abs(h[0]) ** 2
 
 
-def _bank(samplerate, bits=16, coefs=(), dither="tpdf", nchannels=1):
-    return MeterBank(nchannels, samplerate, bits, coefs, dither)
+def _bank(samplerate, bits=16, coefs=(), dither="tpdf", channels=1):
+    return MeterBank(channels, samplerate, bits, coefs, dither)
 
 
 def test_full_scale_sine_reads_0_dbfs():
@@ -80,7 +80,7 @@ def test_16bit_flat_tpdf_reads_theory():
     # = -94.11 dBFS; weighted: 10·log10(2·Q²/4·mean(|W|², 0..fs/2)).
     samplerate = 48000
     step = 2.0**-15
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=2024), nchannels=2, samplerate=samplerate)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=2024), channels=2, samplerate=samplerate)
     n = np.arange(1 << 18)
     x = np.stack([0.25 * np.sin(2 * np.pi * 997.0 / samplerate * n), np.zeros(n.size)], axis=1)
     bank = MeterBank.for_engine(engine)
@@ -107,7 +107,7 @@ def test_shaped_tpdf_reads_its_prediction(shaper):
     # same bands and weightings.  Shaped dither sits near Nyquist, so this also checks the
     # weightings to fs/2.
     samplerate = 44100
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper=shaper, seed=99), nchannels=1, samplerate=samplerate)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper=shaper, seed=99), channels=1, samplerate=samplerate)
     n = np.arange(1 << 18)
     x = (0.1 * np.sin(2 * np.pi * 441.0 / samplerate * n))[:, None]
     bank = MeterBank.for_engine(engine)

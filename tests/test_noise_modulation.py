@@ -15,7 +15,7 @@ AMPLITUDE_LSB = 0.3
 
 
 def _run(dither, shaper="flat"):
-    engine = Engine(EngineSettings(bits=16, dither=dither, shaper=shaper, seed=77), nchannels=1, samplerate=SAMPLERATE)
+    engine = Engine(EngineSettings(bits=16, dither=dither, shaper=shaper, seed=77), channels=1, samplerate=SAMPLERATE)
     n = np.arange(NFRAMES)
     x = (AMPLITUDE_LSB * 2.0**-15 * np.sin(2 * np.pi * 997.0 / SAMPLERATE * n))[:, None]
     bank = MeterBank.for_engine(engine)

@@ -65,10 +65,10 @@ class TestPhiloxWords:
         assert not np.array_equal(a, b) and not np.array_equal(a, c)
 
 
-def _engine_words(dither, seed, nchannels, x, start_frame, dither_scale=1.0, bits=24):
+def _engine_words(dither, seed, channels, x, start_frame, dither_scale=1.0, bits=24):
     engine = Engine(
         EngineSettings(bits=bits, dither=dither, seed=seed, dither_scale=dither_scale),
-        nchannels=nchannels,
+        channels=channels,
         samplerate=48000,
         start_frame=start_frame,
     )

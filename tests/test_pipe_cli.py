@@ -19,9 +19,9 @@ from rtstage import pcm
 PIPE = [sys.executable, "-m", "rtstage", "pipe"]
 
 
-def signal(frames=6000, nchannels=2, seed=0):
+def signal(frames=6000, channels=2, seed=0):
     rng = np.random.default_rng(seed)
-    return rng.uniform(-0.9, 0.9, (frames, nchannels))
+    return rng.uniform(-0.9, 0.9, (frames, channels))
 
 
 def to_s24(words24):
@@ -59,15 +59,15 @@ def test_pipe_equals_engine(in_format, out_format, bits):
         input=raw, capture_output=True,
     )
     assert proc.returncode == 0, proc.stderr
-    container = pcm.engine_container(out_format)
-    words = Engine(EngineSettings(bits, "tpdf", "wannamaker-f3", seed=77), 2, 44100, container=container).process(decoded)
+    format_bits = pcm.engine_format_bits(out_format)
+    words = Engine(EngineSettings(bits, "tpdf", "wannamaker-f3", seed=77), 2, 44100, format_bits=format_bits).process(decoded)
     assert proc.stdout == pcm.encode(words, out_format)
     assert b"rtstage" not in proc.stdout  # logs go to stderr only
 
 
 def test_short_reads_and_partial_frames_lose_nothing():
     # Feed the pipe in odd-sized chunks that split samples and frames; the output must equal one-shot processing.
-    x = signal(frames=5000, nchannels=3, seed=1)
+    x = signal(frames=5000, channels=3, seed=1)
     raw = x.astype("<f4").tobytes()
     proc = subprocess.Popen(
         PIPE + ["--samplerate", "48000", "--channels", "3", "--in-format", "f32le", "--out-format", "s16le", "--seed", "5", "--blocksize", "64"],

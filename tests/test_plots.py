@@ -71,7 +71,7 @@ def test_report_figures_are_written(tmp_path):
     from rtstage import Engine, EngineSettings
     from rtstage.meters import MeterBank
 
-    engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="gentle9", seed=1), nchannels=1, samplerate=96000)
+    engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="gentle9", seed=1), channels=1, samplerate=96000)
     bank = MeterBank.for_engine(engine)
     x = 0.3 * np.sin(2 * np.pi * 997 / 96000 * np.arange(96000))[:, None]
     bank.update(x, engine.process(x))

@@ -100,7 +100,7 @@ def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blo
     extra = ["--packed24"] if packed else []
     reference, status, tap, summary, data, stderr = _capture_run(jack_server, tmp_path, bits, shaper, seed, blocksize,
                                                                  4.0, extra)
-    container = 16 if bits <= 16 else 24
+    format_bits = 16 if bits <= 16 else 24
     assert status["port"]["packed24"] == packed and status["port"]["packed24_overruns"] == 0
 
     # Tap: bit-exact against rtstage render (the offline path; the same kernel, block-exact by design).
@@ -110,7 +110,7 @@ def test_port_delivers_the_render(jack_server, tmp_path, bits, shaper, seed, blo
     assert_array_equal(tap_words, reference)
 
     # Port: JACK float32 samples back to words (exact on the container's grid, else ValueError).
-    words = words_from_float(data["audio"], container)
+    words = words_from_float(data["audio"], format_bits)
     if bits > 16:
         assert not np.any(words & ((1 << (24 - bits)) - 1)), "words below the word length are not zero"
     period = int(data["period"])

@@ -24,8 +24,8 @@ except ImportError:  # tests/ itself on sys.path
 ALL_BITS = tuple(range(2, 25))
 
 
-def _engine(bits, dither="none", seed=3, nchannels=2, container=None, **settings):
-    return Engine(EngineSettings(bits=bits, dither=dither, seed=seed, **settings), nchannels, 48000, container=container)
+def _engine(bits, dither="none", seed=3, channels=2, format_bits=None, **settings):
+    return Engine(EngineSettings(bits=bits, dither=dither, seed=seed, **settings), channels, 48000, format_bits=format_bits)
 
 
 class TestGridAndPacking:
@@ -48,8 +48,8 @@ class TestGridAndPacking:
 
     def test_sixteen_bits_in_a_32_bit_container(self):
         x = np.linspace(-1.0, 1.0, 1001)[:, None]
-        y16 = _engine(16, nchannels=1).process(x)
-        y32 = _engine(16, nchannels=1, container=32).process(x)
+        y16 = _engine(16, channels=1).process(x)
+        y32 = _engine(16, channels=1, format_bits=32).process(x)
         assert y32.dtype == np.int32
         assert_array_equal(y32.astype(np.int64), y16.astype(np.int64) << 16)
 
@@ -72,7 +72,7 @@ class TestRounding:
         # Kernel docstring: "round to nearest, ties toward +inf".
         v = np.array([0.5, -0.5, 1.5, -1.5, 2.5, -2.5, 0.49999999999, -0.50000000001])
         expected = np.array([1, 0, 2, -1, 3, -2, 0, -1])
-        engine = _engine(16, nchannels=1)
+        engine = _engine(16, channels=1)
         q = engine.process((v / 2.0**15)[:, None]).astype(np.int64)[:, 0]
         assert_array_equal(q, expected)
 
@@ -86,7 +86,7 @@ class TestRounding:
     def test_gain_is_applied_in_db(self):
         # gain_db = -6.02 dB: the linear gain is 10^(-6.02/20); numpy reference.
         x = np.linspace(-1.0, 1.0, 2001)[:, None]
-        engine = _engine(16, nchannels=1, gain_db=-6.02)
+        engine = _engine(16, channels=1, gain_db=-6.02)
         q = engine.process(x).astype(np.int64)[:, 0]
         expected = np.floor(x[:, 0] * 10.0 ** (-6.02 / 20.0) * 2.0**15 + 0.5)
         assert_array_equal(q, expected.astype(np.int64))
@@ -155,7 +155,7 @@ class TestSineSnr:
         amplitude = (2.0 ** (nbits - 1) - 3.0) / 2.0 ** (nbits - 1)
         phase = 2.0 * np.pi * cycles * np.arange(nframes) / nframes
         x = (amplitude * np.sin(phase + 0.3))[:, None]
-        engine = _engine(nbits, "tpdf", seed=1992, nchannels=1)
+        engine = _engine(nbits, "tpdf", seed=1992, channels=1)
         q = engine.process(x).astype(np.float64)[:, 0]
         assert engine.clipped[0] == 0
         basis = np.column_stack((np.cos(phase), np.sin(phase), np.ones(nframes)))

@@ -13,7 +13,7 @@ from rtstage.shapers import RATE_TAGS, family_members, get_shaper
 @pytest.mark.parametrize("samplerate", [44100, 48000])
 @pytest.mark.parametrize("preset", list_presets())
 def test_every_preset_runs_without_a_rate_warning(preset, samplerate):
-    engine = Engine(settings_from(preset), nchannels=2, samplerate=samplerate)
+    engine = Engine(settings_from(preset), channels=2, samplerate=samplerate)
     rate = engine.settings.shaper.design_samplerate_hz
     assert rate is None or rate == samplerate
     assert shaper_warnings(engine.settings, samplerate) == []
@@ -36,12 +36,12 @@ def test_gentle_design_for_every_rate(rate):
 
 
 def test_family_follows_the_engine_rate_and_live_changes():
-    engine = Engine(settings_from("link16"), nchannels=1, samplerate=44100)
+    engine = Engine(settings_from("link16"), channels=1, samplerate=44100)
     assert engine.settings.shaper.id == "gentle9-44k1"
     engine.apply(settings_from(None, shaper="thr9"))
     assert engine.settings.shaper.id == "thr9-44k1"
     # A shaper asked for by its full id is kept as given.
-    engine = Engine(settings_from(None, shaper="thr9-44k1"), nchannels=1, samplerate=48000)
+    engine = Engine(settings_from(None, shaper="thr9-44k1"), channels=1, samplerate=48000)
     assert engine.settings.shaper.id == "thr9-44k1"
     assert get_shaper("gentle9").family == "gentle9"
 
@@ -58,6 +58,6 @@ def test_socket_accepts_a_family_and_the_engine_takes_the_rate_member():
 
 
 def test_rate_warning_names_the_family():
-    engine = Engine(settings_from(None, shaper="thr9-44k1"), nchannels=1, samplerate=48000)
+    engine = Engine(settings_from(None, shaper="thr9-44k1"), channels=1, samplerate=48000)
     (message,) = shaper_warnings(engine.settings, 48000)
     assert "--shaper thr9-48k" in message and "--shaper thr9)" in message

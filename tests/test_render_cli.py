@@ -75,8 +75,8 @@ def test_explicit_subtypes_hold_the_words_exactly(tmp_path, programme, subtype, 
     write(src, x, samplerate, "DOUBLE")
     out = str(tmp_path / f"out{ext}")
     assert main(["render", src, out, "--bits", str(bits), "--seed", "5", "--subtype", subtype]) == 0
-    container = 16 if bits <= 16 and subtype.startswith("PCM_") and subtype != "PCM_32" else (32 if subtype == "PCM_32" else 24)
-    words, _ = render_array(sf.read(src, dtype="float64", always_2d=True)[0], samplerate, EngineSettings(bits, seed=5), container=container)
+    format_bits = 16 if bits <= 16 and subtype.startswith("PCM_") and subtype != "PCM_32" else (32 if subtype == "PCM_32" else 24)
+    words, _ = render_array(sf.read(src, dtype="float64", always_2d=True)[0], samplerate, EngineSettings(bits, seed=5), format_bits=format_bits)
     want = words * (2.0**-15 if words.dtype == np.int16 else 2.0**-31)
     got = sf.read(out, dtype="float64", always_2d=True)[0]
     assert_array_equal(got, want)

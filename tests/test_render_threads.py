@@ -27,10 +27,10 @@ NFRAMES = 1500
 SEED = 0xBEEF
 
 
-def _signal(nframes, nchannels, seed=3):
+def _signal(nframes, channels, seed=3):
     rng = np.random.default_rng(seed)
     n = np.arange(nframes)[:, None]
-    x = 0.5 * np.sin(2 * np.pi * (0.01 + 0.004 * np.arange(nchannels)) * n) + 0.05 * rng.standard_normal((nframes, nchannels))
+    x = 0.5 * np.sin(2 * np.pi * (0.01 + 0.004 * np.arange(channels)) * n) + 0.05 * rng.standard_normal((nframes, channels))
     x[700:730, 1] *= 3.0  # overload on one channel: clip counts per channel
     x[900, 3] = np.nan  # a replaced sample clears one channel's history
     return x

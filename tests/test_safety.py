@@ -42,7 +42,7 @@ TPDF_FEEDBACK_PEAK_LSB = 1.5  # Q/2 + TPDF peak Q (dither.py table)
 PERIOD = 1024
 
 
-def _disturbed_signal(nperiods, nchannels, seed=0):
+def _disturbed_signal(nperiods, channels, seed=0):
     """A -12 dBFS sine with, in every period, an overload burst and NaN, +Inf, -Inf samples.
 
     Returns the signal and a boolean mask of the disturbed samples.
@@ -50,7 +50,7 @@ def _disturbed_signal(nperiods, nchannels, seed=0):
     rng = np.random.default_rng(seed)
     nframes = nperiods * PERIOD
     n = np.arange(nframes)[:, None]
-    x = 0.25 * np.sin(2 * np.pi * 0.01234 * n + np.arange(nchannels))
+    x = 0.25 * np.sin(2 * np.pi * 0.01234 * n + np.arange(channels))
     disturbed = np.zeros(x.shape, dtype=bool)
     for p in range(nperiods):
         base = p * PERIOD
@@ -60,7 +60,7 @@ def _disturbed_signal(nperiods, nchannels, seed=0):
         disturbed[base : base + length] = True
         for offset, value in ((200, np.nan), (400, np.inf), (600, -np.inf)):
             at = base + offset + int(rng.integers(0, 50))
-            c = int(rng.integers(0, nchannels))
+            c = int(rng.integers(0, channels))
             x[at, c] = value
             disturbed[at, c] = True
         x[base + 800 : base + 830] = sign * 1.0  # exactly full scale
@@ -68,8 +68,8 @@ def _disturbed_signal(nperiods, nchannels, seed=0):
     return x, disturbed
 
 
-def _engine(nchannels, dither="tpdf", force=False, seed=2822):
-    return Engine(EngineSettings(bits=BITS, dither=dither, shaper=SHAPER, seed=seed, accept_unsafe=force), nchannels, 44100)
+def _engine(channels, dither="tpdf", force=False, seed=2822):
+    return Engine(EngineSettings(bits=BITS, dither=dither, shaper=SHAPER, seed=seed, accept_unsafe=force), channels, 44100)
 
 
 def _replaced(x):
@@ -98,9 +98,9 @@ def test_output_bounded_and_counts_exact():
 
 
 def test_shaper_recovers_within_its_length():
-    nchannels = 4
-    x, disturbed = _disturbed_signal(128, nchannels, seed=1)
-    engine = _engine(nchannels)
+    channels = 4
+    x, disturbed = _disturbed_signal(128, channels, seed=1)
+    engine = _engine(channels)
     q = engine.process(x).astype(np.float64)
     noise = q - _replaced(x) * SCALE
     # Samples more than NTAPS after the last disturbed sample of their channel.

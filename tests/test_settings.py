@@ -21,10 +21,10 @@ except ImportError:  # tests/ itself on sys.path
     import reference as ref
 
 
-def _refused(settings=None, nchannels=1, samplerate=48000, **engine_kw):
+def _refused(settings=None, channels=1, samplerate=48000, **engine_kw):
     settings = EngineSettings() if settings is None else settings
     with pytest.raises(RtstageError) as info:
-        Engine(settings, nchannels, samplerate, **engine_kw)
+        Engine(settings, channels, samplerate, **engine_kw)
     message = str(info.value)
     assert message and "\n" not in message  # one-line reason
     return message
@@ -40,8 +40,8 @@ class TestWordLength:
         Engine(EngineSettings(bits=bits, seed=1), 1, 48000)
 
     def test_word_must_fit_container(self):
-        _refused(EngineSettings(bits=20, seed=1), container=16)
-        _refused(EngineSettings(bits=16, seed=1), container=20)
+        _refused(EngineSettings(bits=20, seed=1), format_bits=16)
+        _refused(EngineSettings(bits=16, seed=1), format_bits=20)
         engine = Engine(EngineSettings(bits=16, seed=1), 1, 48000)
         with pytest.raises(RtstageError):
             engine.apply(EngineSettings(bits=20))
@@ -104,9 +104,9 @@ class TestShaperSafety:
 
 
 class TestChannelsAndRates:
-    @pytest.mark.parametrize("nchannels", (0, -1, 65, 2.0, True))
-    def test_channel_count_refused(self, nchannels):
-        assert "channel" in _refused(EngineSettings(seed=1), nchannels=nchannels)
+    @pytest.mark.parametrize("channels", (0, -1, 65, 2.0, True))
+    def test_channel_count_refused(self, channels):
+        assert "channel" in _refused(EngineSettings(seed=1), channels=channels)
 
     @pytest.mark.parametrize("samplerate", (7999, 384001, 0))
     def test_sample_rate_refused(self, samplerate):
@@ -153,7 +153,7 @@ class TestChannelsAndRates:
 class TestBlockShape:
     @pytest.mark.parametrize("shape", ((16,), (16, 3), (16, 2, 1)))
     def test_wrong_block_shape_refused(self, shape):
-        # Engine.process takes (frames, nchannels); anything else is a user error with a reason.
+        # Engine.process takes (frames, channels); anything else is a user error with a reason.
         engine = Engine(EngineSettings(seed=1), 2, 48000)
         with pytest.raises(RtstageError) as info:
             engine.process(np.zeros(shape))

@@ -42,7 +42,7 @@ def _shaped_noise(shaper_id):
     return q - x * 2.0**15
 
 
-def _welch_relative_sigma(nframes, nperseg, nchannels):
+def _welch_relative_sigma(nframes, nperseg, channels):
     """Relative standard deviation of a Hann, 50 %-overlap Welch estimate averaged over channels.
 
     Welch (IEEE Trans. Audio Electroacoust. AU-15, 1967; from memory): for K
@@ -53,7 +53,7 @@ def _welch_relative_sigma(nframes, nperseg, nchannels):
     hop = nperseg // 2
     k = (nframes - nperseg) // hop + 1
     rho = (np.dot(w[hop:], w[:-hop]) / np.dot(w, w)) ** 2
-    return np.sqrt((1.0 + 2.0 * rho) / (k * nchannels))
+    return np.sqrt((1.0 + 2.0 * rho) / (k * channels))
 
 
 @pytest.fixture(scope="module", params=SHAPED)

@@ -178,9 +178,9 @@ class PlainC:
 
     MAX_TAPS = 32
 
-    def __init__(self, fn, settings, nchannels, iparams, fparams):
+    def __init__(self, fn, settings, channels, iparams, fparams):
         self.fn = fn
-        self.nchannels = nchannels
+        self.channels = channels
         self.bits = int(iparams[K.IP_BITS])
         self.seed = int(settings.seed)
         self.ntaps = int(iparams[K.IP_NTAPS])
@@ -189,9 +189,9 @@ class PlainC:
         self.dither_scale = float(fparams[K.FP_DITHER_SCALE])
         self.feedback_peak = float(fparams[K.FP_FEEDBACK_PEAK])
         self.out_shift = int(iparams[K.IP_OUT_SHIFT])
-        self.hist = np.zeros(nchannels * self.MAX_TAPS, dtype=np.float64)
-        self.clipped = np.zeros(nchannels, dtype=np.int64)
-        self.nonfinite = np.zeros(nchannels, dtype=np.int64)
+        self.hist = np.zeros(channels * self.MAX_TAPS, dtype=np.float64)
+        self.clipped = np.zeros(channels, dtype=np.int64)
+        self.nonfinite = np.zeros(channels, dtype=np.int64)
 
     def reset(self):
         self.hist[:] = 0.0
@@ -200,7 +200,7 @@ class PlainC:
 
     def process(self, x, y, frame0=0):
         self.fn(
-            x, y, x.shape[0], self.nchannels, self.bits, self.seed, self.coefs, self.ntaps,
+            x, y, x.shape[0], self.channels, self.bits, self.seed, self.coefs, self.ntaps,
             self.gain, self.dither_scale, self.feedback_peak, self.out_shift, frame0,
             self.hist, self.clipped, self.nonfinite,
         )  # fmt: skip
@@ -243,11 +243,11 @@ def kernel_at_revision(rev):
     return path
 
 
-def programme_channels(nframes, nchannels):
-    """The stereo programme spread over ``nchannels`` channels (each a little quieter than the last pair)."""
+def programme_channels(nframes, channels):
+    """The stereo programme spread over ``channels`` channels (each a little quieter than the last pair)."""
     stereo = make_programme(nframes, BENCH_SAMPLERATE)
-    x = np.empty((nframes, nchannels), dtype=np.float64)
-    for c in range(nchannels):
+    x = np.empty((nframes, channels), dtype=np.float64)
+    for c in range(channels):
         x[:, c] = stereo[:, c % 2] * (1.0 - 0.01 * (c // 2))
     return x
 

@@ -238,12 +238,12 @@ def main(argv=None):
     return 0
 
 
-def many_channels(nchannels=64, samplerate=96000, blocksize=64, seconds=2.0, shaper="thr9-96k", realtime=True):
+def many_channels(channels=64, samplerate=96000, blocksize=64, seconds=2.0, shaper="thr9-96k", realtime=True):
     """Callback time with many channels, as a fraction of the period (issue 17: worst case <= 10 %).
 
     The compiled PortAudio callback that the live engine hands to PortAudio
     (:func:`rtstage.live.cfunc.build_callback`) is called directly, once per
-    period and paced in real time, on ``nchannels`` channels of float32
+    period and paced in real time, on ``channels`` channels of float32
     input (a generated noise programme at -12 dBFS), 16 bits, TPDF dither and
     a 9-tap shaper, with the tap ring and the meter ring on (as ``rtstage run``
     with its display) and their consumers keeping up.  No device is needed,
@@ -267,12 +267,12 @@ def many_channels(nchannels=64, samplerate=96000, blocksize=64, seconds=2.0, sha
     settings = EngineSettings(bits=16, dither="tpdf", shaper=shaper, seed=1).resolved()
     nblocks = max(1, int(seconds * samplerate / blocksize))
     period_ns = blocksize * 1e9 / samplerate
-    blk = S.SharedBlock(nchannels, 16, blocksize, ring_frames=16 * blocksize, meter_frames=samplerate // 2)
+    blk = S.SharedBlock(channels, 16, blocksize, ring_frames=16 * blocksize, meter_frames=samplerate // 2)
     encode_params(settings, samplerate, 0, blk.kernel.iparams, blk.kernel.fparams)
     blk.kernel.reset(0)
-    x = generate("noise:level_dbfs=-12,seed=3", samplerate, nchannels, 0, nblocks * blocksize).astype(np.float32)
-    inp = np.empty(blocksize * nchannels, dtype=np.float32)
-    out = np.zeros(blocksize * nchannels, dtype=np.int16)
+    x = generate("noise:level_dbfs=-12,seed=3", samplerate, channels, 0, nblocks * blocksize).astype(np.float32)
+    inp = np.empty(blocksize * channels, dtype=np.float32)
+    out = np.zeros(blocksize * channels, dtype=np.int16)
     cb = build_callback()
     in_ptr = ctypes.c_void_p(inp.ctypes.data)
     out_ptr = ctypes.c_void_p(out.ctypes.data)
@@ -320,7 +320,7 @@ def many_channels(nchannels=64, samplerate=96000, blocksize=64, seconds=2.0, sha
                 "p999_us": float(np.percentile(t, 99.9)) / 1e3, "max_us": float(t.max()) / 1e3}
 
     r = {
-        "channels": nchannels, "samplerate": samplerate, "blocksize": blocksize, "shaper": shaper,
+        "channels": channels, "samplerate": samplerate, "blocksize": blocksize, "shaper": shaper,
         "callbacks": nblocks, "period_us": period_ns / 1e3, "sched_fifo": policy is not None,
         "callback": stats(times_ns), "callback_cpu": stats(cpu_ns), "callback_0_frames": stats(empty_ns),
         "dropped_meter_frames": int(ctl[S.C_MRING_DROPPED]),

@@ -6,7 +6,8 @@
  * k = (frames the server advanced - frames this client processed) / period is constant
  * while every cycle calls the client once.  A call that ran in the next cycle raises k
  * and the call after it (same cycle) brings it back: a LATE cycle.  A change that holds
- * is a JUMP: cycles the server counted and nobody ran.
+ * is a JUMP: cycles the server counted and nobody ran.  A shift followed at once by a further
+ * shift counts as a jump too (it did not come back), so back-to-back stalls are each recorded.
  *
  * Build: gcc -O2 -o jack_passthrough tools/jack_passthrough.c -ljack
  * Run:   jack_passthrough NAME    (JACK_DEFAULT_SERVER picks the server)
@@ -49,6 +50,14 @@ static int process(jack_nframes_t nframes, void *arg)
             pend = 0;
         }
     } else if (!pend || cand != k) {
+        if (pend) {
+            /* A second shift before the first was confirmed: the first held (it did not come back), so
+             * it was a jump of its own; without this, two stalls in consecutive cycles record only the second. */
+            if (jumps < MAX_EVENTS)
+                jump_at[jumps] = cand_at;
+            jumps++;
+            net = cand;
+        }
         cand = k;
         cand_at = cycle;
         pend = 1;

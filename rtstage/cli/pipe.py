@@ -33,12 +33,12 @@ def run_pipe(args):
     check_blocksize(args.blocksize)
     check_stream_shape(args.samplerate, args.channels, "pipe")
     settings = settings_from_args(args)
-    container = pcm.engine_container(args.out_format)
+    format_bits = pcm.engine_format_bits(args.out_format)
     try:
-        check_word_fits(settings.bits, container)
+        check_word_fits(settings.bits, format_bits)
     except RtstageError:
         raise RtstageError(f"a {settings.bits}-bit word does not fit output format {args.out_format}") from None
-    engine = Engine(settings, args.channels, args.samplerate, container=container)
+    engine = Engine(settings, args.channels, args.samplerate, format_bits=format_bits)
     if args.seed is None:
         log(f"seed {settings.seed} (pass --seed {settings.seed} to reproduce)")
     result = pipe_stream(engine, sys.stdin.buffer, sys.stdout.buffer, args.in_format, args.out_format, args.blocksize)

@@ -126,7 +126,7 @@ def run_render(args):
             "output": args.output,
             "frames": int(engine.frame),
             "samplerate": int(engine.samplerate),
-            "channels": int(engine.nchannels),
+            "channels": int(engine.channels),
             "settings": {"bits": s.bits, "dither": s.dither, "shaper": s.shaper_id, "gain_db": s.gain_db,
                          "dither_scale": s.dither_scale},
             "seed": int(s.seed),

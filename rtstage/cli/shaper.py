@@ -189,24 +189,24 @@ def run_plot(args):
         plan.add_file(args.png, "--png")
         plan.check()
     shaper = get_shaper(args.shaper)
-    freqs, gain = D.ntf_curve(shaper, args.samplerate, args.points)
-    rate = float(freqs[-1] * 2.0)
+    freqs_hz, gain = D.ntf_curve(shaper, args.samplerate, args.points)
+    rate = float(freqs_hz[-1] * 2.0)
     gain = [max(float(g), -300.0) for g in gain]
     if args.png:
         with plan:
-            _draw_png(shaper, freqs, gain, rate, args.png, plan)
+            _draw_png(shaper, freqs_hz, gain, rate, args.png, plan)
         _log(f"wrote {args.png}")
         return 0
     if args.json:
-        print(json.dumps({"id": shaper.id, "samplerate_hz": rate, "freqs_hz": [float(f) for f in freqs], "gain_db": gain}))
+        print(json.dumps({"id": shaper.id, "samplerate_hz": rate, "freqs_hz": [float(f) for f in freqs_hz], "gain_db": gain}))
         return 0
     print(f"# NTF of {shaper.id} at {rate:g} Hz: frequency_hz gain_db")
-    for f, g in zip(freqs, gain):
+    for f, g in zip(freqs_hz, gain):
         print(f"{f:.3f} {g:.4f}")
     return 0
 
 
-def _draw_png(shaper, freqs, gain, rate, path, plan):
+def _draw_png(shaper, freqs_hz, gain, rate, path, plan):
     """The NTF figure, in the style of the report's ``shaper-ntf.png`` (:func:`rtstage.meters.plots.write_ntf_png`)."""
     from ..meters.plots import write_ntf_png
 

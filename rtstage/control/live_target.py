@@ -63,8 +63,8 @@ APPLIED_KEPT = 4096
 """Applied changes kept in :attr:`LiveTarget.applied` (the automation log has them all)."""
 
 
-def _dbfs_none(nchannels):
-    return [None] * int(nchannels)
+def _dbfs_none(channels):
+    return [None] * int(channels)
 
 
 class LiveTarget(ControlTarget, Startable):
@@ -166,9 +166,9 @@ class LiveTarget(ControlTarget, Startable):
             "state": "running" if live.get("state") == "running" else "idle",
             "frame": live.get("engine_frame", 0),
             "samplerate": live.get("samplerate"),
-            "nchannels": live.get("channels"),
+            "channels": live.get("channels"),
             "blocksize": live.get("blocksize"),
-            "container_bits": self.core.width,
+            "container_bits": self.core.container_bits,
             "uptime_s": live.get("uptime_s", 0.0),
             "xruns": int(flags.get("flagged_callbacks", 0)),
             "cpu_load": live.get("cpu_load", 0.0),

@@ -31,7 +31,7 @@ The contract a target must keep
     ``wait(submit(values))`` (provided by :class:`ControlTarget`).
 ``status() -> dict``
     At least ``state`` (``"running"`` or ``"idle"``), ``frame``,
-    ``samplerate``, ``nchannels``, ``blocksize``, ``uptime_s``, ``xruns``,
+    ``samplerate``, ``channels``, ``blocksize``, ``uptime_s``, ``xruns``,
     ``cpu_load`` (0..1, share of the block period spent processing),
     ``seed`` (the seed in use) and ``settings`` (``get()``).
 ``meters() -> dict``
@@ -228,9 +228,9 @@ class EngineTarget(ControlTarget):
             "state": "running" if self.running else "idle",
             "frame": self.engine.frame,
             "samplerate": self.engine.samplerate,
-            "nchannels": self.engine.nchannels,
+            "channels": self.engine.channels,
             "blocksize": self.blocksize,
-            "container_bits": self.engine.container,
+            "container_bits": self.engine.format_bits,
             "uptime_s": round(time.monotonic() - self._t0, 3),
             "xruns": self.xruns,
             "cpu_load": round(self.cpu_load, 4),
@@ -274,7 +274,7 @@ class EngineTarget(ControlTarget):
         return y
 
     def _meter_frame(self, y):
-        nch = self.engine.nchannels
+        nch = self.engine.channels
         full_scale = self.engine.full_scale
         if y is None or len(y) == 0:
             peak = [None] * nch
@@ -293,13 +293,13 @@ class EngineTarget(ControlTarget):
         }
 
 
-def sine_block(frame, nframes, nchannels, samplerate, level_dbfs=-20.0, frequency_hz=997.0):
+def sine_block(frame, nframes, channels, samplerate, level_dbfs=-20.0, frequency_hz=997.0):
     """A deterministic sine block at ``frequency_hz`` (997 Hz, AES17's test frequency) from ``frame``.
 
     Each channel is offset by a quarter period so channels differ.
     """
     n = np.arange(frame, frame + nframes, dtype=np.float64)[:, None]
-    phase = 2.0 * np.pi * frequency_hz * n / samplerate + (np.pi / 2.0) * np.arange(nchannels)[None, :]
+    phase = 2.0 * np.pi * frequency_hz * n / samplerate + (np.pi / 2.0) * np.arange(channels)[None, :]
     return (10.0 ** (level_dbfs / 20.0)) * np.sin(phase)
 
 
@@ -315,7 +315,7 @@ class BlockDriver(Startable):
     realtime : bool
         Pace blocks at the block period (True) or run as fast as possible.
     source : callable or None
-        ``source(frame, nframes) -> ndarray (nframes, nchannels)``; None: :func:`sine_block`.
+        ``source(frame, nframes) -> ndarray (nframes, channels)``; None: :func:`sine_block`.
     tap : bool
         Keep every output block in ``self.tap`` (a list of arrays).
 
@@ -330,7 +330,7 @@ class BlockDriver(Startable):
         self.nblocks = nblocks
         self.realtime = realtime
         eng = target.engine
-        self.source = source or (lambda f, n: sine_block(f, n, eng.nchannels, eng.samplerate))
+        self.source = source or (lambda f, n: sine_block(f, n, eng.channels, eng.samplerate))
         self.tap = [] if tap else None
         self.block_times_s = []
         self._worker = StoppableThread(self._run, "rtstage-block-driver")

@@ -34,7 +34,7 @@ class ControlStack:
 
 
 @contextlib.contextmanager
-def control_stack(settings=None, nchannels=2, samplerate=48000, blocksize=256, preset_dir=None, driver=False,
+def control_stack(settings=None, channels=2, samplerate=48000, blocksize=256, preset_dir=None, driver=False,
                   realtime=True, nblocks=None, automation_log=None, server_options=None, token=None, logger=None):
     """Start a control server on 127.0.0.1 (ephemeral port) over an :class:`EngineTarget`; stop it on exit.
 
@@ -48,7 +48,7 @@ def control_stack(settings=None, nchannels=2, samplerate=48000, blocksize=256, p
         Extra keyword arguments for :class:`ControlServer`.
     """
     settings = settings or EngineSettings(bits=16, dither="tpdf", seed=1)
-    engine = Engine(settings, nchannels=nchannels, samplerate=samplerate)
+    engine = Engine(settings, channels=channels, samplerate=samplerate)
     target = EngineTarget(engine, blocksize=blocksize, automation_log=automation_log)
     controller = Controller(target, PresetStore(preset_dir) if preset_dir else None)
     options = dict(server_options or {})

@@ -213,9 +213,9 @@ def design_shaper(
     if not AUDIBLE_LOW_HZ < audible_limit_hz:
         raise RtstageError(f"audible limit must be above {AUDIBLE_LOW_HZ:g} Hz, got {audible_limit_hz}")
 
-    freqs = _grid_hz(samplerate, npoints)
-    base_db = weighting_db(weighting, freqs, table)  # evaluated once; floored per candidate range below
-    audible = freqs <= audible_limit_hz
+    freqs_hz = _grid_hz(samplerate, npoints)
+    base_db = weighting_db(weighting, freqs_hz, table)  # evaluated once; floored per candidate range below
+    audible = freqs_hz <= audible_limit_hz
     peak = float(np.max(base_db[audible]))
 
     def solve(rng):
@@ -258,7 +258,7 @@ def design_shaper(
         "rtstage shaper design: linear predictor of the weighting (Gerzon & Craven, AES 1989)",
         description,
     )
-    w_db = design_weighting_db(weighting, freqs, used, table, audible_limit_hz)
+    w_db = design_weighting_db(weighting, freqs_hz, used, table, audible_limit_hz)
     figures = shaper_figures(shaper, samplerate, npoints)
     figures["weighted_noise_gain_db"] = weighted_noise_gain_db(coefs, 10.0 ** (w_db / 10.0))
     return ShaperDesign(

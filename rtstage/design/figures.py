@@ -74,7 +74,7 @@ def shaper_figures(shaper, samplerate=None, npoints=GRID_POINTS):
         Gains of an exact zero (``(1 - z^-1)`` at DC) are reported as -300 dB.
     """
     rate = _rate_for(shaper, samplerate)
-    freqs = _grid_hz(rate, npoints)
+    freqs_hz = _grid_hz(rate, npoints)
     gain = np.maximum(_ntf_db_on_grid(shaper.coefs, npoints), -300.0)
     imax, imin = int(np.argmax(gain)), int(np.argmin(gain))
     return {
@@ -83,9 +83,9 @@ def shaper_figures(shaper, samplerate=None, npoints=GRID_POINTS):
         "dc_gain_db": float(gain[0]),
         "nyquist_gain_db": float(gain[-1]),
         "max_gain_db": float(gain[imax]),
-        "max_gain_hz": float(freqs[imax]),
+        "max_gain_hz": float(freqs_hz[imax]),
         "min_gain_db": float(gain[imin]),
-        "min_gain_hz": float(freqs[imin]),
+        "min_gain_hz": float(freqs_hz[imin]),
         "noise_gain_db": float(10.0 * math.log10(noise_power_gain(shaper.coefs))),
         "log_mean_db": float(log_mean_db(shaper.coefs)),
         "minimum_phase": bool(is_minimum_phase(shaper.coefs)),

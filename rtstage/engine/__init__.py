@@ -11,7 +11,7 @@ Examples
 >>> import numpy as np
 >>> from rtstage import Engine, EngineSettings
 >>> engine = Engine(EngineSettings(bits=16, dither="tpdf", shaper="wannamaker-f9", seed=7),
-...                 nchannels=2, samplerate=44100)
+...                 channels=2, samplerate=44100)
 >>> words = engine.process(np.zeros((512, 2)))
 >>> words.dtype, words.shape
 (dtype('int16'), (512, 2))
@@ -24,5 +24,5 @@ from ..settings import (  # noqa: F401  (the settings value object and its limit
 )
 from .automation import AutomationPlayer, process_with_automation  # noqa: F401
 from .core import (  # noqa: F401
-    CONTAINERS, Engine, StateView, check_word_fits, container_bits, container_width, encode_params, word_dtype,
+    FORMAT_BITS, Engine, StateView, check_word_fits, smallest_format_bits, container_bits_of, encode_params, word_dtype,
 )

@@ -78,7 +78,7 @@ def process_with_automation(engine, x, player, out=None, quantizer_in=None):
     ----------
     engine : rtstage.engine.Engine
         Engine positioned at the block's first frame (``engine.frame``).
-    x : ndarray, shape (frames, nchannels)
+    x : ndarray, shape (frames, channels)
         Input block.
     player : AutomationPlayer
         Changes to apply.

@@ -11,38 +11,43 @@ from dataclasses import replace
 import numpy as np
 
 from .. import kernel as K
-from ..kernel import container_width, word_dtype
+from ..kernel import container_bits_of, word_dtype
 from ..dither import DITHER_BY_CODE, DITHER_KINDS, feedback_peak_lsb
 from ..errors import RtstageError
 from ..settings import (ERROR_CEILING_DBFS, GAIN_RAMP_SECONDS, MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE,
                         MONITOR_MODES)
 
 
-CONTAINERS = (16, 24, 32)
-"""Output containers in bits: 16 (int16), 24 and 32 (both left-justified in int32)."""
+FORMAT_BITS = (16, 24, 32)
+"""Sample formats in bits (``format_bits``): 16 (words in int16), 24 and 32 (words left-justified in int32).
+
+One vocabulary across rtstage: ``format_bits`` is the sample format of files and
+devices (16, 24 or 32), ``container_bits`` the integer the words travel in
+(16 or 32, :func:`rtstage.kernel.container_bits_of`), ``bits`` the word length.
+"""
 
 
-def container_bits(bits):
-    """Smallest integer container (16 or 24 bits) that holds a ``bits``-bit word."""
+def smallest_format_bits(bits):
+    """Smallest sample format (16 or 24 bits) that holds a ``bits``-bit word."""
     return 16 if bits <= 16 else 24
 
 
-def check_word_fits(bits, container, exact=False):
-    """Raise :class:`RtstageError` unless a ``bits``-bit word may use ``container``.
+def check_word_fits(bits, format_bits, exact=False):
+    """Raise :class:`RtstageError` unless a ``bits``-bit word may use the ``format_bits``-bit sample format.
 
-    The one container rule: a word fits a container at least as wide as
-    :func:`container_bits` of it.  With ``exact`` (a live stream, whose device
-    format is fixed when it opens) the word must need exactly this container:
+    The one rule: a word fits a format at least as wide as
+    :func:`smallest_format_bits` of it.  With ``exact`` (a live stream, whose device
+    format is fixed when it opens) the word must need exactly this format:
     a 16-bit stream takes words of at most 16 bits, a 24-bit one words of 17
     to 24 bits.
     """
-    need = container_bits(bits)
-    if need > container or (exact and need != container):
+    need = smallest_format_bits(bits)
+    if need > format_bits or (exact and need != format_bits):
         if exact:
-            allowed = "at most 16" if container == 16 else "17 to 24"
+            allowed = "at most 16" if format_bits == 16 else "17 to 24"
         else:
-            allowed = "at most 16" if container == 16 else "at most 24"
-        raise RtstageError(f"bits={bits} does not fit this engine's {container}-bit output ({allowed} bits)")
+            allowed = "at most 16" if format_bits == 16 else "at most 24"
+        raise RtstageError(f"bits={bits} does not fit this engine's {format_bits}-bit output ({allowed} bits)")
 
 
 class StateView:
@@ -100,7 +105,7 @@ class StateView:
 
 
 class Engine(StateView):
-    """Requantizer for ``nchannels`` channels at ``samplerate``: settings in, encoded parameters and state owned.
+    """Requantizer for ``channels`` channels at ``samplerate``: settings in, encoded parameters and state owned.
 
     The offline drivers call :meth:`process`; the live engine moves the state
     into its shared block with :meth:`use_memory` and lets the compiled
@@ -113,60 +118,60 @@ class Engine(StateView):
     settings : EngineSettings
         Word length, dither, shaper, seed, gain.  A missing seed is drawn here
         and can be read back from ``engine.settings.seed``.
-    nchannels : int
+    channels : int
         Channel count, 1..64.
     samplerate : int
         Sample rate in Hz, 8000..384000.
-    container : int or None
-        Output container width in bits (16, 24 or 32); None picks the smallest
+    format_bits : int or None
+        Output sample format in bits (16, 24 or 32); None picks the smallest
         of 16 and 24 that holds ``bits``.  24-bit words are left-justified in
         int32.
     start_frame : int
         Sample index of the first frame (dither is a function of it).
-    exact_container : bool
-        Later word lengths must need exactly this container (a live stream;
+    exact_format : bool
+        Later word lengths must need exactly this format (a live stream;
         see :func:`check_word_fits`).
     """
 
-    def __init__(self, settings, nchannels, samplerate, container=None, start_frame=0, exact_container=False):
-        if isinstance(nchannels, bool) or not isinstance(nchannels, (int, np.integer)) or not 1 <= nchannels <= MAX_CHANNELS:
-            raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {nchannels}")
+    def __init__(self, settings, channels, samplerate, format_bits=None, start_frame=0, exact_format=False):
+        if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)) or not 1 <= channels <= MAX_CHANNELS:
+            raise RtstageError(f"channel count must be between 1 and {MAX_CHANNELS}, got {channels}")
         if (isinstance(samplerate, bool) or not isinstance(samplerate, (int, float, np.integer, np.floating))
                 or not MIN_SAMPLERATE <= samplerate <= MAX_SAMPLERATE):
             raise RtstageError(f"sample rate must be between {MIN_SAMPLERATE} and {MAX_SAMPLERATE} Hz, got {samplerate}")
         self.settings = settings.resolved(samplerate)
-        self.nchannels = int(nchannels)
+        self.channels = int(channels)
         self.samplerate = samplerate
-        self.container = container_bits(self.settings.bits) if container is None else int(container)
-        if self.container not in CONTAINERS:
-            raise RtstageError(f"container must be one of {', '.join(map(str, CONTAINERS))} bits, got {self.container}")
-        check_word_fits(self.settings.bits, self.container)
-        self.exact_container = bool(exact_container)
-        self.dtype = word_dtype(self.container)
-        super().__init__(K.KernelState(self.nchannels))
+        self.format_bits = smallest_format_bits(self.settings.bits) if format_bits is None else int(format_bits)
+        if self.format_bits not in FORMAT_BITS:
+            raise RtstageError(f"sample format must be one of {', '.join(map(str, FORMAT_BITS))} bits, got {self.format_bits}")
+        check_word_fits(self.settings.bits, self.format_bits)
+        self.exact_format = bool(exact_format)
+        self.dtype = word_dtype(self.format_bits)
+        super().__init__(K.KernelState(self.channels))
         self._publish = None
-        self._no_tap = np.empty((0, self.nchannels), dtype=np.float64)
+        self._no_tap = np.empty((0, self.channels), dtype=np.float64)
         self.apply(self.settings, ramp=False)
         self.state.reset(start_frame)
 
     @property
-    def width(self):
+    def container_bits(self):
         """Bits of the integer each word is stored in: 16 or 32."""
-        return container_width(self.container)
+        return container_bits_of(self.format_bits)
 
     @property
     def full_scale(self):
-        """Full scale of the stored words, 2^(width-1)."""
-        return float(2 ** (self.width - 1))
+        """Full scale of the stored words, 2^(container_bits-1)."""
+        return float(2 ** (self.container_bits - 1))
 
     @property
     def out_shift(self):
         """Left shift from the word to its container."""
-        return self.width - self.settings.bits
+        return self.container_bits - self.settings.bits
 
     def check_bits(self, bits):
         """Raise :class:`RtstageError` when this engine cannot switch to ``bits``-bit words."""
-        check_word_fits(bits, self.container, exact=self.exact_container)
+        check_word_fits(bits, self.format_bits, exact=self.exact_format)
 
     def use_memory(self, state, publish=None):
         """Move the state into ``state`` (for instance views into the live shared block) and work there.
@@ -221,9 +226,9 @@ class Engine(StateView):
         return None
 
     def process(self, x, out=None, quantizer_in=None, requantized=None):
-        """Requantize a block ``x`` of shape (frames, nchannels), float32 or float64.
+        """Requantize a block ``x`` of shape (frames, channels), float32 or float64.
 
-        Returns the output words, shape (frames, nchannels), int16 for a 16-bit
+        Returns the output words, shape (frames, channels), int16 for a 16-bit
         container and left-justified int32 otherwise: the monitored signal
         (the requantized words unless ``monitor`` says otherwise).  Pass
         ``out`` to reuse an array; then nothing is allocated.  Pass
@@ -233,8 +238,8 @@ class Engine(StateView):
         words whatever the monitor mode and mute.
         """
         x = np.asarray(x)
-        if x.ndim != 2 or x.shape[1] != self.nchannels:
-            raise RtstageError(f"expected a block of shape (frames, {self.nchannels}), got {x.shape}")
+        if x.ndim != 2 or x.shape[1] != self.channels:
+            raise RtstageError(f"expected a block of shape (frames, {self.channels}), got {x.shape}")
         if x.dtype not in (np.float32, np.float64):
             x = x.astype(np.float64)
         if out is None:

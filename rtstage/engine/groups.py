@@ -23,15 +23,15 @@ import numpy as np
 from .. import kernel as K
 
 
-def group_bounds(nchannels, nthreads):
-    """Channel boundaries ``[0, b1, ..., nchannels]`` of ``min(nthreads, nchannels)`` groups."""
-    nthreads = max(1, min(int(nthreads), int(nchannels)))
-    npairs = (nchannels + 1) // 2
+def group_bounds(channels, nthreads):
+    """Channel boundaries ``[0, b1, ..., channels]`` of ``min(nthreads, channels)`` groups."""
+    nthreads = max(1, min(int(nthreads), int(channels)))
+    npairs = (channels + 1) // 2
     if nthreads <= npairs:
-        bounds = [min(2 * (npairs * i // nthreads), nchannels) for i in range(nthreads)]
+        bounds = [min(2 * (npairs * i // nthreads), channels) for i in range(nthreads)]
     else:
-        bounds = [nchannels * i // nthreads for i in range(nthreads)]
-    return bounds + [int(nchannels)]
+        bounds = [channels * i // nthreads for i in range(nthreads)]
+    return bounds + [int(channels)]
 
 
 class ChannelGroups:
@@ -52,7 +52,7 @@ class ChannelGroups:
     def __init__(self, engine, nthreads):
         self.engine = engine
         st = engine.state
-        self.bounds = group_bounds(engine.nchannels, nthreads)
+        self.bounds = group_bounds(engine.channels, nthreads)
         self.states = []
         for g0, g1 in zip(self.bounds, self.bounds[1:]):
             gs = K.KernelState(g1 - g0)
@@ -90,7 +90,7 @@ class ChannelGroups:
                 self._done.put(exc)
 
     def process(self, x, out, quantizer_in=None):
-        """Requantize the block ``x`` (frames, nchannels) into ``out``, as :meth:`Engine.process` would.
+        """Requantize the block ``x`` (frames, channels) into ``out``, as :meth:`Engine.process` would.
 
         ``quantizer_in`` (float64, at least as many rows as ``x``) receives
         ``x·gain`` for meters, as in :meth:`Engine.process`.

@@ -181,7 +181,7 @@ def callback_core(in_addr, out_addr, frames, status_flags, table_addr):
 
     if ctl[S.C_SRC_DONE] != 0:
         produced = 0
-    elif ctl[S.C_OUT_BITS] == 16:
+    elif ctl[S.C_CONTAINER_BITS] == 16:
         y16 = carray(address_to_voidptr(out_addr), (frames, nch), np.int16)
         produced = _blocks(in_addr, y16, frames, table, ctl, nch)
     else:
@@ -190,7 +190,7 @@ def callback_core(in_addr, out_addr, frames, status_flags, table_addr):
     ctl[S.C_FRAMES] += frames
     if produced < frames:
         # The file source ended: the rest of the buffer is digital zero, and the stream completes.
-        width = 2 if ctl[S.C_OUT_BITS] == 16 else 4
+        width = 2 if ctl[S.C_CONTAINER_BITS] == 16 else 4
         pad = carray(address_to_voidptr(out_addr + produced * nch * width), ((frames - produced) * nch * width,), np.uint8)
         for i in range(pad.shape[0]):
             pad[i] = 0

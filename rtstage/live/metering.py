@@ -53,7 +53,7 @@ class LiveMeters:
 
         s = self.engine.settings
         shaper = s.shaper
-        nch = self.block.nchannels
+        nch = self.block.channels
         # Compile (or load from the cache) every meter kernel now, with the real types: compiling
         # them in the meter thread's first update would hold the GIL for seconds while audio runs,
         # starving the control and MIDI threads.

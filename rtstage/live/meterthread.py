@@ -102,7 +102,7 @@ class MeterThread:
         self.chunk_frames = int(chunk_frames)
         self.report_interval_s = 1.0 / float(report_hz)
         self.loudness_target = loudness_target
-        nch = block.nchannels
+        nch = block.channels
         self._chunk_x = np.zeros((self.chunk_frames, nch), dtype=np.float64)
         self._chunk_w = np.zeros((self.chunk_frames, nch), dtype=block.out_dtype)
         self._fill = 0
@@ -171,7 +171,7 @@ class MeterThread:
         bits, dither_id, dither_scale, coefs, out_shift = key
         name = self.shaper_name(coefs) if self.shaper_name is not None else None
         # The programme's loudness carries on across setting changes (the noise figures restart).
-        self._bank = MeterBank(self.block.nchannels, self.samplerate, bits, coefs, dither_id, dither_scale, out_shift,
+        self._bank = MeterBank(self.block.channels, self.samplerate, bits, coefs, dither_id, dither_scale, out_shift,
                                shaper_id=name, loudness_meter=self._bank.loudness_meter if self._bank else None,
                                loudness_target=self.loudness_target)
         self._bank_key = key

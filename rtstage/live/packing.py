@@ -57,12 +57,12 @@ def zero_bytes(dst_addr, nbytes):
         dst[i] = 0
 
 
-def install(ctl, nchannels, max_frames, enabled):
+def install(ctl, channels, max_frames, enabled):
     """In the stream worker, before the stream opens: allocate the scratch and write the mode; returns the scratch."""
     if not enabled:
         ctl[C_PACKED24] = 0
         return None
-    scratch = np.zeros((4 * int(max_frames), int(nchannels)), dtype=np.int32)
+    scratch = np.zeros((4 * int(max_frames), int(channels)), dtype=np.int32)
     ctl[C_PACK_ADDR] = scratch.ctypes.data
     ctl[C_PACK_FRAMES] = scratch.shape[0]
     ctl[C_PACKED24] = 1

@@ -73,11 +73,11 @@ def probe_devices(requested, duplex):
     return reply
 
 
-def geometry(channels, out_bits, blocksize, samplerate, tap, src_frames, meter_ring_s):
-    """The shared block's geometry: ``(channels, out_bits, max_frames, ring_frames, src_frames, meter_frames)``."""
+def geometry(channels, container_bits, blocksize, samplerate, tap, src_frames, meter_ring_s):
+    """The shared block's geometry: ``(channels, container_bits, max_frames, ring_frames, src_frames, meter_frames)``."""
     ring_frames = max(int(TAP_RING_S * samplerate), 4 * blocksize) if tap else 0
     meter_frames = max(int(meter_ring_s * samplerate), 8 * blocksize) if meter_ring_s > 0 else 0
-    return (channels, out_bits, blocksize, ring_frames, src_frames, meter_frames)
+    return (channels, container_bits, blocksize, ring_frames, src_frames, meter_frames)
 
 
 def shared_block(block_geometry):
@@ -126,12 +126,12 @@ def configure_input(block, samplerate, source_spec, loop):
         block.gen_fp[1] = amplitude
 
 
-def warm(channels, out_bits, blocksize):
+def warm(channels, container_bits, blocksize):
     """Compile (or load from the cache) the callback and run the Python-side helpers once with the real types."""
     from .cfunc import build_callback
 
     build_callback()
-    scratch = S.SharedBlock(channels, out_bits, blocksize, 4 * blocksize)
+    scratch = S.SharedBlock(channels, container_bits, blocksize, 4 * blocksize)
     S.publish_params(scratch.ctl, scratch.pending_ip, scratch.pending_fp, np.zeros_like(scratch.scratch_ip),
                      np.zeros_like(scratch.scratch_fp))
     S.applied(scratch.ctl)

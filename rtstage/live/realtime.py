@@ -392,8 +392,8 @@ def warm_meter_thread(block, samplerate, thread_class, **thread_kwargs):
     """
     from . import shared as S
 
-    nch, out_bits, max_frames = block.geometry[0], block.geometry[1], block.geometry[2]
-    scratch = S.SharedBlock(nch, out_bits, max_frames, 0, 0, 8 * max_frames)
+    nch, container_bits, max_frames = block.geometry[0], block.geometry[1], block.geometry[2]
+    scratch = S.SharedBlock(nch, container_bits, max_frames, 0, 0, 8 * max_frames)
     scratch.kernel.iparams[:] = block.kernel.iparams
     scratch.kernel.fparams[:] = block.kernel.fparams
     frames = 2 * max_frames

@@ -62,23 +62,23 @@ T_SIP = 11
 """Scratch iparams the callback reads the pending block into."""
 T_SFP = 12
 T_SRC = 13
-"""Preloaded file source, float64 (src_frames, nchannels)."""
+"""Preloaded file source, float64 (src_frames, channels)."""
 T_XBUF = 14
-"""Generator scratch, float64 (max_frames, nchannels)."""
+"""Generator scratch, float64 (max_frames, channels)."""
 T_GENW = 15
-"""Generator Philox scratch, uint64 (nchannels, 4)."""
+"""Generator Philox scratch, uint64 (channels, 4)."""
 T_GENF = 16
 """Generator float parameters: freq_hz, amplitude."""
 T_RING = 17
-"""Tap ring, output dtype (ring_frames, nchannels)."""
+"""Tap ring, output dtype (ring_frames, channels)."""
 T_VQ = 18
-"""Meter tap of the current block, float64 (max_frames, nchannels): x·gain as quantized."""
+"""Meter tap of the current block, float64 (max_frames, channels): x·gain as quantized."""
 T_MX = 19
-"""Meter ring, quantizer input, float64 (meter_frames, nchannels)."""
+"""Meter ring, quantizer input, float64 (meter_frames, channels)."""
 T_MW = 20
-"""Meter ring, requantized words, output dtype (meter_frames, nchannels)."""
+"""Meter ring, requantized words, output dtype (meter_frames, channels)."""
 T_YQ = 21
-"""Requantized words of the current block, output dtype (max_frames, nchannels): what the meters get, whatever
+"""Requantized words of the current block, output dtype (max_frames, channels): what the meters get, whatever
 the monitor mode, mute or auto-mute (the device and the tap get the monitored words)."""
 T_LEN = 22
 
@@ -86,7 +86,7 @@ T_LEN = 22
 C_NCH = 0
 C_MAX_FRAMES = 1
 C_IN_MODE = 2
-C_OUT_BITS = 3
+C_CONTAINER_BITS = 3
 """Output container: 16 (int16) or 32 (int32)."""
 C_SRC_FRAMES = 4
 C_SRC_LOOP = 5
@@ -150,10 +150,10 @@ FLAG_COUNTERS = (
 """Status-flag counters by name, as reported in :meth:`LiveEngine.status`."""
 
 
-def _layout(nchannels, out_bits, max_frames, ring_frames, src_frames, meter_frames=0):
+def _layout(channels, container_bits, max_frames, ring_frames, src_frames, meter_frames=0):
     """(slot, shape, dtype) of every shared array, in table order."""
-    nch = int(nchannels)
-    out_dtype = K.word_dtype(out_bits)
+    nch = int(channels)
+    out_dtype = K.word_dtype(container_bits)
     spec = [None] * T_LEN
     spec[T_KIP] = ((K.IP_LEN,), np.int64)
     spec[T_KFP] = ((K.FP_LEN,), np.float64)
@@ -192,9 +192,9 @@ class SharedBlock:
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channels in and out.
-    out_bits : int
+    container_bits : int
         Output container: 16 for int16, 32 for left-justified int32.
     max_frames : int
         Largest block the callback processes in one kernel call (longer
@@ -213,18 +213,18 @@ class SharedBlock:
         process attaching to existing memory does not).
     """
 
-    def __init__(self, nchannels, out_bits, max_frames, ring_frames=0, src_frames=0, meter_frames=0, buffer=None,
+    def __init__(self, channels, container_bits, max_frames, ring_frames=0, src_frames=0, meter_frames=0, buffer=None,
                  init=True):
-        self.nchannels = int(nchannels)
-        self.geometry = (self.nchannels, int(out_bits), int(max_frames), int(ring_frames), int(src_frames),
+        self.channels = int(channels)
+        self.geometry = (self.channels, int(container_bits), int(max_frames), int(ring_frames), int(src_frames),
                          int(meter_frames))
-        self.out_dtype = K.word_dtype(out_bits)
+        self.out_dtype = K.word_dtype(container_bits)
         spec, offsets, self.nbytes = _layout(*self.geometry)
         if buffer is None:
             buffer = np.zeros(self.nbytes, dtype=np.uint8)
         self._buffer = buffer
         arrays = [np.ndarray(shape, dtype=dtype, buffer=buffer, offset=off) for (shape, dtype), off in zip(spec, offsets)]
-        self.kernel = K.KernelState(self.nchannels)
+        self.kernel = K.KernelState(self.channels)
         (self.kernel.iparams, self.kernel.fparams, self.kernel.hist, self.kernel.counts, self.kernel.clock,
          self.kernel.ramp, self.kernel.rng_words, self.kernel.rng_tag) = arrays[T_KIP : T_RNGT + 1]
         self.ctl = arrays[T_CTL]
@@ -236,9 +236,9 @@ class SharedBlock:
         self.requantized = arrays[T_YQ]
         if init:
             self.kernel.rng_tag[:] = -1
-            self.ctl[C_NCH] = self.nchannels
+            self.ctl[C_NCH] = self.channels
             self.ctl[C_MAX_FRAMES] = int(max_frames)
-            self.ctl[C_OUT_BITS] = int(out_bits)
+            self.ctl[C_CONTAINER_BITS] = int(container_bits)
             self.ctl[C_RING_FRAMES] = max(int(ring_frames), 1)
             self.ctl[C_TAP_ON] = 1 if ring_frames > 0 else 0
             self.ctl[C_SRC_FRAMES] = int(src_frames)

@@ -30,8 +30,8 @@ SourceSpec
     A parsed spec: ``kind`` and its parameters.
 parse_source(text)
     Parse ``--source`` text (a generator spec or a file path).
-generate(spec, samplerate, nchannels, start_frame, nframes)
-    The float64 samples of a generated source, shape (nframes, nchannels).
+generate(spec, samplerate, channels, start_frame, nframes)
+    The float64 samples of a generated source, shape (nframes, channels).
 load_source_file(path)
     Decode a file source to float64 (frames, channels) and its sample rate.
 
@@ -193,9 +193,9 @@ def fill_generated(kind, freq_hz, amplitude, seed_bits, samplerate, start_frame,
         Sample rate in Hz.
     start_frame : int
         Sample index of ``out[0]``.
-    out : ndarray, float64, shape (>= nframes, nchannels)
+    out : ndarray, float64, shape (>= nframes, channels)
     nframes : int
-    words : ndarray, uint64, shape (nchannels, 4)
+    words : ndarray, uint64, shape (channels, 4)
         Scratch for the Philox block (preallocated by the caller).
 
     Notes
@@ -236,7 +236,7 @@ def fill_generated(kind, freq_hz, amplitude, seed_bits, samplerate, start_frame,
                 out[n, c] = 0.0
 
 
-def generate(spec, samplerate, nchannels, start_frame, nframes):
+def generate(spec, samplerate, channels, start_frame, nframes):
     """The float64 samples of a generated source.
 
     Parameters
@@ -245,7 +245,7 @@ def generate(spec, samplerate, nchannels, start_frame, nframes):
         A generator spec (``silence``, ``tone:...``, ``noise:...``).
     samplerate : int
         Sample rate in Hz.
-    nchannels : int
+    channels : int
         Channel count.
     start_frame : int
         Sample index of the first frame.
@@ -254,7 +254,7 @@ def generate(spec, samplerate, nchannels, start_frame, nframes):
 
     Returns
     -------
-    ndarray, float64, shape (nframes, nchannels)
+    ndarray, float64, shape (nframes, channels)
         Exactly the samples the live callback feeds the kernel at those indices.
     """
     if isinstance(spec, str):
@@ -262,8 +262,8 @@ def generate(spec, samplerate, nchannels, start_frame, nframes):
     if not spec.generated:
         raise RtstageError(f"'{spec.describe()}' is a file, not a generator spec")
     check_source(spec, samplerate)
-    out = np.zeros((int(nframes), int(nchannels)), dtype=np.float64)
-    words = np.zeros((int(nchannels), 4), dtype=np.uint64)
+    out = np.zeros((int(nframes), int(channels)), dtype=np.float64)
+    words = np.zeros((int(channels), 4), dtype=np.uint64)
     kind, freq_hz, amplitude, seed_bits = gen_params(spec, samplerate)
     fill_generated(kind, freq_hz, amplitude, seed_bits, int(samplerate), int(start_frame), out, int(nframes), words)
     return out

@@ -76,7 +76,7 @@ def open_stream(block, samplerate, blocksize, output_device, input_device=None, 
     out_dtype = "int16" if block.out_dtype.__name__ == "int16" else "int32"
     if int(block.ctl[C_PACKED24]):  # packed three-byte samples (rtstage.live.packing)
         out_dtype = "int24"
-    nch = block.nchannels
+    nch = block.channels
     try:
         if input_device is None:
             stream = sd._StreamBase(

@@ -194,12 +194,12 @@ class LiveEngine(ControlSurface):
             check_source(src, self.samplerate)
         # The one engine object model: settings resolved, validated and encoded here, once; its state moves
         # into the shared block below, and later changes go out through the seqlock (set_settings).
-        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
+        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_format=True)
         self.settings = self.engine.settings
-        if self.packed24 and (self.engine.width != 32 or self.callback_mode != "compiled"):
+        if self.packed24 and (self.engine.container_bits != 32 or self.callback_mode != "compiled"):
             raise RtstageError("packed 24-bit output needs a 17..24-bit word and the compiled callback")
         # The tap ring feeds the tap file and the RTP output alike.
-        geometry = P.geometry(self.channels, self.engine.width, self.blocksize, self.samplerate,
+        geometry = P.geometry(self.channels, self.engine.container_bits, self.blocksize, self.samplerate,
                               self.tap_path or self.rtp_out_options, 0 if data is None else data.shape[0],
                               self.meter_ring_s)
         self.block, self._memory, self._shm_fd = P.shared_block(geometry)
@@ -207,7 +207,7 @@ class LiveEngine(ControlSurface):
             self.block.source[:] = data
         P.configure_input(self.block, self.samplerate, src, self.loop)
         self.engine.use_memory(self.block.kernel, publish=self._publish_params)
-        P.warm(self.channels, self.engine.width, self.blocksize)
+        P.warm(self.channels, self.engine.container_bits, self.blocksize)
         self.live_meters = LiveMeters(self.block, self.engine, self.samplerate)
         info = {"settings": self.settings.to_dict(), "samplerate": self.samplerate,
                 "source": src.describe() if src else "input"}
@@ -223,9 +223,9 @@ class LiveEngine(ControlSurface):
         return self
 
     @property
-    def out_bits(self):
+    def container_bits(self):
         """Width of the output words: 16 (int16) or 32 (left-justified int32)."""
-        return self.engine.width
+        return self.engine.container_bits
 
     @property
     def out_shift(self):

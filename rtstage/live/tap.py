@@ -96,12 +96,12 @@ class TapWriter:
         ext = os.path.splitext(path)[1].lower().lstrip(".")
         fmt = {"wav": "WAV", "flac": "FLAC", "aiff": "AIFF", "aif": "AIFF", "w64": "W64", "caf": "CAF"}.get(ext, "WAV")
         try:
-            self._file = sf.SoundFile(self._audio_path, "w", int(samplerate), block.nchannels, subtype, format=fmt)
+            self._file = sf.SoundFile(self._audio_path, "w", int(samplerate), block.channels, subtype, format=fmt)
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
             if self.stream is not None:
                 self.stream.discard()
             raise RtstageError(f"cannot open tap file {path}: {exc}") from None
-        self._chunk = np.zeros((CHUNK_FRAMES, block.nchannels), dtype=block.out_dtype)
+        self._chunk = np.zeros((CHUNK_FRAMES, block.channels), dtype=block.out_dtype)
         self._worker = StoppableThread(self._run, "rtstage-tap")
         self.error = None
         self._reason = None

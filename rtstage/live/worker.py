@@ -103,11 +103,11 @@ def stream(args):
     memory = mmap.mmap(args.shm_fd, 0)  # the control process's anonymous memory file, inherited
     os.close(args.shm_fd)
     block = S.SharedBlock(*geometry, buffer=memory, init=False)
-    nch, out_bits, max_frames = geometry[0], geometry[1], geometry[2]
+    nch, container_bits, max_frames = geometry[0], geometry[1], geometry[2]
 
     # Warm the compiled callback on a scratch block of the same types before anything runs.
     cb = build_callback()
-    scratch = S.SharedBlock(nch, out_bits, max_frames, 4 * max_frames, max_frames)
+    scratch = S.SharedBlock(nch, container_bits, max_frames, 4 * max_frames, max_frames)
     scratch.ctl[:S.C_SRC_POS] = block.ctl[:S.C_SRC_POS]
     scratch.ctl[S.C_RING_FRAMES] = 4 * max_frames
     scratch.ctl[S.C_SRC_FRAMES] = max_frames

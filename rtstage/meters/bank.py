@@ -13,7 +13,7 @@ Examples
 >>> import numpy as np
 >>> from rtstage import Engine, EngineSettings
 >>> from rtstage.meters import MeterBank
->>> engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=1), nchannels=1, samplerate=48000)
+>>> engine = Engine(EngineSettings(bits=16, dither="tpdf", seed=1), channels=1, samplerate=48000)
 >>> bank = MeterBank.for_engine(engine)
 >>> x = 0.5 * np.sin(2 * np.pi * 997 / 48000 * np.arange(48000))[:, None]
 >>> bank.update(x, engine.process(x))
@@ -58,7 +58,7 @@ class MeterBank:
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
     samplerate : float
         Sample rate in Hz.
@@ -87,7 +87,7 @@ class MeterBank:
 
     def __init__(
         self,
-        nchannels,
+        channels,
         samplerate,
         bits,
         shaper_coefs,
@@ -105,7 +105,7 @@ class MeterBank:
             raise RtstageError(f"unknown dither '{dither_id}' (known: {', '.join(DITHER_KINDS)})")
         if not 2 <= int(bits) <= 24:
             raise RtstageError(f"bits must be between 2 and 24, got {bits}")
-        self.nchannels = int(nchannels)
+        self.channels = int(channels)
         self.samplerate = float(samplerate)
         self.bits = int(bits)
         self.shaper_coefs = tuple(float(h) for h in shaper_coefs)
@@ -119,17 +119,17 @@ class MeterBank:
         self._q_hi = self._lsb_per_fs - 1.0
         self._q_lo = -self._lsb_per_fs
 
-        self._spectrum = WelchSpectrum(self.nchannels, self.samplerate, segment_frames)
-        self._modulation = NoiseModulation(self.nchannels, modulation_bins, modulation_min_samples)
-        self._in_peaks = PeakMeter(self.nchannels)
-        self._out_peaks = PeakMeter(self.nchannels)
-        self._bits = BitActivity(self.nchannels, self.container_bits)
-        self._clipped = np.zeros(self.nchannels, dtype=np.int64)
-        self._nonfinite = np.zeros(self.nchannels, dtype=np.int64)
+        self._spectrum = WelchSpectrum(self.channels, self.samplerate, segment_frames)
+        self._modulation = NoiseModulation(self.channels, modulation_bins, modulation_min_samples)
+        self._in_peaks = PeakMeter(self.channels)
+        self._out_peaks = PeakMeter(self.channels)
+        self._bits = BitActivity(self.channels, self.container_bits)
+        self._clipped = np.zeros(self.channels, dtype=np.int64)
+        self._nonfinite = np.zeros(self.channels, dtype=np.int64)
         self._engine_counts = None
         self.frames = 0
         # Programme loudness of the output; a meter handed over continues its programme.
-        self.loudness_meter = loudness_meter or LoudnessMeter(self.nchannels, self.samplerate)
+        self.loudness_meter = loudness_meter or LoudnessMeter(self.channels, self.samplerate)
         self.loudness_target = loudness_target
 
         # Headroom the shaped error needs (the same authority the engine's warnings use), and
@@ -142,24 +142,24 @@ class MeterBank:
         self.peak_limit_dbfs = headroom_dbfs(shaper, self.dither_id, self.bits, self.dither_scale)
         span = max(4.0, math.ceil(min(self.headroom_lsb, 1e6)))
         self.histogram_edges_lsb = np.linspace(-span, span, HISTOGRAM_BINS + 1)
-        self._histogram = np.zeros((self.nchannels, HISTOGRAM_BINS + 2), dtype=np.int64)
+        self._histogram = np.zeros((self.channels, HISTOGRAM_BINS + 2), dtype=np.int64)
 
         # Theory is fixed by the settings: evaluate it once, on the measurement grid.
-        freqs = self._spectrum.freqs_hz
+        freqs_hz = self._spectrum.freqs_hz
         self._predicted_psd = predicted_psd(
-            freqs, self.samplerate, self.bits, self.shaper_coefs, self.dither_id, self.dither_scale
+            freqs_hz, self.samplerate, self.bits, self.shaper_coefs, self.dither_id, self.dither_scale
         )
-        self._predicted = {k: power_to_dbfs(p) for k, p in reading_powers(self._predicted_psd, freqs, self.samplerate).items()}
+        self._predicted = {k: power_to_dbfs(p) for k, p in reading_powers(self._predicted_psd, freqs_hz, self.samplerate).items()}
         self.band_centres_hz, self._band_edges_hz = fractional_octave_bands(self.samplerate)
-        self._band_bins = band_powers(np.ones(freqs.size), freqs, self._band_edges_hz) / (freqs[1] - freqs[0])
-        self._predicted_bands = band_powers(self._predicted_psd, freqs, self._band_edges_hz)
+        self._band_bins = band_powers(np.ones(freqs_hz.size), freqs_hz, self._band_edges_hz) / (freqs_hz[1] - freqs_hz[0])
+        self._predicted_bands = band_powers(self._predicted_psd, freqs_hz, self._band_edges_hz)
 
     @classmethod
     def for_engine(cls, engine, **kwargs):
         """A bank configured from an :class:`rtstage.Engine`'s settings and layout."""
         s = engine.settings
         return cls(
-            engine.nchannels,
+            engine.channels,
             engine.samplerate,
             s.bits,
             s.shaper.coefs,
@@ -175,10 +175,10 @@ class MeterBank:
 
         Parameters
         ----------
-        x_quantizer_in : ndarray, shape (frames, nchannels), float
+        x_quantizer_in : ndarray, shape (frames, channels), float
             Input as it enters the quantizer, in full-scale units (after
             gain; before the shaper's feedback and the dither).
-        words : ndarray, shape (frames, nchannels), int16 or int32
+        words : ndarray, shape (frames, channels), int16 or int32
             The engine's output words for the same frames, ``q << out_shift``.
 
         Notes
@@ -192,9 +192,9 @@ class MeterBank:
         """
         x = np.asarray(x_quantizer_in, dtype=np.float64)
         words = np.asarray(words)
-        if x.ndim != 2 or x.shape[1] != self.nchannels or words.shape != x.shape:
+        if x.ndim != 2 or x.shape[1] != self.channels or words.shape != x.shape:
             raise RtstageError(
-                f"meter block: expected input and words of shape (frames, {self.nchannels}), got {x.shape} and {words.shape}"
+                f"meter block: expected input and words of shape (frames, {self.channels}), got {x.shape} and {words.shape}"
             )
         if not np.issubdtype(words.dtype, np.integer):
             raise RtstageError(f"meter block: words must be integers, got {words.dtype}")
@@ -217,7 +217,7 @@ class MeterBank:
         if e.shape[0]:
             # Bin 0 and the last bin count errors outside the range (there should be none).
             idx = np.searchsorted(self.histogram_edges_lsb, e, side="right")
-            for c in range(self.nchannels):
+            for c in range(self.channels):
                 self._histogram[c] += np.bincount(idx[:, c], minlength=HISTOGRAM_BINS + 2)
         self._modulation.update(v, e, finite & ~at_rail)
         self._in_peaks.update(x)
@@ -254,10 +254,10 @@ class MeterBank:
 
     def report(self):
         """The report as plain data (see docs/meters.md for every key)."""
-        freqs = self._spectrum.freqs_hz
+        freqs_hz = self._spectrum.freqs_hz
         psd = self._spectrum.psd()
-        measured = reading_powers(psd, freqs, self.samplerate)
-        bands = band_powers(psd, freqs, self._band_edges_hz)
+        measured = reading_powers(psd, freqs_hz, self.samplerate)
+        bands = band_powers(psd, freqs_hz, self._band_edges_hz)
         modulation = self._modulation.reading_db()
         bins_used = self._modulation.bins_used()
         in_sample, in_true = self._in_peaks.sample_peak, self._in_peaks.true_peak
@@ -271,7 +271,7 @@ class MeterBank:
         limit = self.peak_limit_dbfs if math.isfinite(self.peak_limit_dbfs) else None
 
         channels = []
-        for c in range(self.nchannels):
+        for c in range(self.channels):
             added = {k: (power_to_dbfs(p[c]) if self.frames else None) for k, p in measured.items()}
             channels.append(
                 {

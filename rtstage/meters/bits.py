@@ -23,27 +23,27 @@ def _bits_update(words, nframes, mask, ones, zeros):
 
 
 class BitActivity:
-    """Toggle record of the container bits of ``nchannels`` channels of words.
+    """Toggle record of the container bits of ``channels`` channels of words.
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
     width : int
         Container width in bits (16 or 32 for rtstage's words).
     """
 
-    def __init__(self, nchannels, width):
-        self.nchannels = int(nchannels)
-        self.width = int(width)
-        self.mask = np.int64((1 << self.width) - 1)
-        self._ones = np.zeros(self.nchannels, dtype=np.int64)
-        self._zeros = np.zeros(self.nchannels, dtype=np.int64)
+    def __init__(self, channels, container_bits):
+        self.channels = int(channels)
+        self.container_bits = int(container_bits)
+        self.mask = np.int64((1 << self.container_bits) - 1)
+        self._ones = np.zeros(self.channels, dtype=np.int64)
+        self._zeros = np.zeros(self.channels, dtype=np.int64)
         for dtype in (np.int16, np.int32, np.int64):
-            _bits_update(np.zeros((0, self.nchannels), dtype), 0, self.mask, self._ones.copy(), self._zeros.copy())
+            _bits_update(np.zeros((0, self.channels), dtype), 0, self.mask, self._ones.copy(), self._zeros.copy())
 
     def update(self, words):
-        """Take one block of integer words, shape (frames, nchannels)."""
+        """Take one block of integer words, shape (frames, channels)."""
         _bits_update(np.ascontiguousarray(words), words.shape[0], self.mask, self._ones, self._zeros)
 
     def toggled_mask(self):
@@ -58,7 +58,7 @@ class BitActivity:
         """Word length in use per channel: width minus the lowest active bit (0 when none toggled)."""
         out = []
         for m in self.toggled_mask():
-            out.append(0 if m == 0 else self.width - ((m & -m).bit_length() - 1))
+            out.append(0 if m == 0 else self.container_bits - ((m & -m).bit_length() - 1))
         return out
 
     def pattern(self):
@@ -66,7 +66,7 @@ class BitActivity:
         out = []
         for ones, zeros in zip(self._ones, self._zeros):
             chars = []
-            for bit in range(self.width - 1, -1, -1):
+            for bit in range(self.container_bits - 1, -1, -1):
                 seen1 = (int(ones) >> bit) & 1
                 seen0 = (int(zeros) >> bit) & 1
                 chars.append("*" if seen1 and seen0 else "1" if seen1 else "0" if seen0 else "-")

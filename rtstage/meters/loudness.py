@@ -132,24 +132,24 @@ def k_weighting_sos(samplerate):
     return np.array([shelf, highpass], dtype=np.float64)
 
 
-def default_channel_weights(nchannels):
+def default_channel_weights(channels):
     """BS.1770-4 Table 3 channel weights for the usual layouts.
 
     1 for every channel, except 5 channels (L, R, C, Ls, Rs: surrounds 1.41)
     and 6 channels (L, R, C, LFE, Ls, Rs: LFE 0, surrounds 1.41).
     """
-    if nchannels == 5:
+    if channels == 5:
         return (1.0, 1.0, 1.0, 1.41, 1.41)
-    if nchannels == 6:
+    if channels == 6:
         return (1.0, 1.0, 1.0, 0.0, 1.41, 1.41)
-    return (1.0,) * int(nchannels)
+    return (1.0,) * int(channels)
 
 
 @njit(nogil=True, cache=True)
 def _kweight_hops(x, nframes, sos, state, acc, count, hop, out):
     """K-weight ``x[:nframes]``, add the squares into ``acc`` and emit a row of ``out`` per full hop.
 
-    ``state`` (nchannels, 4) holds the two transposed direct-form-II biquads'
+    ``state`` (channels, 4) holds the two transposed direct-form-II biquads'
     states; ``count[0]`` the frames already in ``acc``.  Returns the rows written.
     """
     nch = x.shape[1]
@@ -218,11 +218,11 @@ class _Series:
 
 
 class LoudnessMeter:
-    """BS.1770-4 loudness of one programme of ``nchannels`` channels, fed block by block.
+    """BS.1770-4 loudness of one programme of ``channels`` channels, fed block by block.
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
     samplerate : float
         Sample rate in Hz; the K-weighting filter is designed for it.
@@ -242,18 +242,18 @@ class LoudnessMeter:
     signal is silent.
     """
 
-    def __init__(self, nchannels, samplerate, channel_weights=None):
-        self.nchannels = int(nchannels)
+    def __init__(self, channels, samplerate, channel_weights=None):
+        self.channels = int(channels)
         self.samplerate = float(samplerate)
-        weights = default_channel_weights(self.nchannels) if channel_weights is None else tuple(float(w) for w in channel_weights)
-        if len(weights) != self.nchannels:
-            raise RtstageError(f"loudness: {len(weights)} channel weights for {self.nchannels} channels")
+        weights = default_channel_weights(self.channels) if channel_weights is None else tuple(float(w) for w in channel_weights)
+        if len(weights) != self.channels:
+            raise RtstageError(f"loudness: {len(weights)} channel weights for {self.channels} channels")
         self.channel_weights = weights
         self._weights = np.asarray(weights, dtype=np.float64)
         self.sos = k_weighting_sos(self.samplerate)
         self.hop_frames = max(1, int(round(HOP_S * self.samplerate)))
-        _kweight_hops(np.zeros((0, self.nchannels)), 0, self.sos, np.zeros((self.nchannels, 4)),
-                      np.zeros(self.nchannels), np.zeros(1, np.int64), self.hop_frames, np.zeros((1, self.nchannels)))
+        _kweight_hops(np.zeros((0, self.channels)), 0, self.sos, np.zeros((self.channels, 4)),
+                      np.zeros(self.channels), np.zeros(1, np.int64), self.hop_frames, np.zeros((1, self.channels)))
         self.programmes = []
         """Reports of the programmes closed by :meth:`new_programme`, oldest first (at most MAX_PROGRAMMES)."""
         self.programme_label = None
@@ -274,8 +274,8 @@ class LoudnessMeter:
 
     def reset(self):
         """Start a new programme: clear the filter, the hops and every reading."""
-        self._state = np.zeros((self.nchannels, 4), dtype=np.float64)
-        self._acc = np.zeros(self.nchannels, dtype=np.float64)
+        self._state = np.zeros((self.channels, 4), dtype=np.float64)
+        self._acc = np.zeros(self.channels, dtype=np.float64)
         self._count = np.zeros(1, dtype=np.int64)
         self._hops = _Series()  # channel-weighted K-weighted power sums, one per 100 ms hop
         self._momentary = _Series()  # mean power of every 400 ms block (one per hop once 4 hops are in)
@@ -284,11 +284,11 @@ class LoudnessMeter:
         self.frames = 0
 
     def update(self, x):
-        """Take one block ``x`` of shape (frames, nchannels), full-scale units, finite."""
+        """Take one block ``x`` of shape (frames, channels), full-scale units, finite."""
         x = np.ascontiguousarray(x, dtype=np.float64)
-        if x.ndim != 2 or x.shape[1] != self.nchannels:
-            raise RtstageError(f"loudness block: expected shape (frames, {self.nchannels}), got {x.shape}")
-        out = np.empty((x.shape[0] // self.hop_frames + 1, self.nchannels), dtype=np.float64)
+        if x.ndim != 2 or x.shape[1] != self.channels:
+            raise RtstageError(f"loudness block: expected shape (frames, {self.channels}), got {x.shape}")
+        out = np.empty((x.shape[0] // self.hop_frames + 1, self.channels), dtype=np.float64)
         rows = _kweight_hops(x, x.shape[0], self.sos, self._state, self._acc, self._count, self.hop_frames, out)
         if rows:
             first = self._hops.size

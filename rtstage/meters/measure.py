@@ -78,8 +78,8 @@ def _dbfs_amplitude(value):
 class _WindowStats:
     """Per-window power, digital silence and held-word counts, in container steps."""
 
-    def __init__(self, nchannels):
-        self.nchannels = nchannels
+    def __init__(self, channels):
+        self.channels = channels
         self.sumsq = []
         self.silent = []
         self.held = []
@@ -94,7 +94,7 @@ class _WindowStats:
 
     def arrays(self):
         if not self.frames:
-            z = np.zeros((0, self.nchannels))
+            z = np.zeros((0, self.channels))
             return z, z.astype(bool), z.astype(np.int64), np.zeros(0)
         return np.array(self.sumsq), np.array(self.silent), np.array(self.held), np.array(self.frames, dtype=float)
 
@@ -194,9 +194,9 @@ def measure_file(path, loudness_target=None, keep_series=False):
     window = max(1, int(round(WINDOW_S * samplerate)))
     info, is_float, blocks = _read_blocks(path, window)
     nch = int(info.channels)
-    container = _CONTAINER_BITS.get(info.subtype, 32)
-    shift = 32 - container if not is_float else 0
-    word_width = container if not is_float else 32
+    format_bits = _CONTAINER_BITS.get(info.subtype, 32)
+    shift = 32 - format_bits if not is_float else 0
+    word_width = format_bits if not is_float else 32
     bits = BitActivity(nch, word_width)
     peaks = PeakMeter(nch)
     loud = LoudnessMeter(nch, samplerate) if samplerate > 2 * 1682 else None
@@ -289,7 +289,7 @@ def measure_file(path, loudness_target=None, keep_series=False):
         "channels_count": nch,
         "frames": frames,
         "duration_s": frames / samplerate,
-        "container_bits": container if not is_float else None,
+        "container_bits": format_bits if not is_float else None,
         "word_bits_read": word_width,
         "window_s": window / samplerate,
         "loudness": loudness_report(loud, peaks.true_peak, loudness_target) if loud is not None else None,

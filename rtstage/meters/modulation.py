@@ -63,11 +63,11 @@ def _bin_update(v_lsb, e_lsb, valid, nframes, counts, sums, sums4):
 
 
 class NoiseModulation:
-    """Binned mean added-noise power for ``nchannels`` channels (see the module's definition).
+    """Binned mean added-noise power for ``channels`` channels (see the module's definition).
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
     nbins : int
         Bins across one step of the input.
@@ -75,18 +75,18 @@ class NoiseModulation:
         Samples a bin must hold to count.
     """
 
-    def __init__(self, nchannels, nbins=DEFAULT_NBINS, min_samples=DEFAULT_MIN_SAMPLES):
-        self.nchannels = int(nchannels)
+    def __init__(self, channels, nbins=DEFAULT_NBINS, min_samples=DEFAULT_MIN_SAMPLES):
+        self.channels = int(channels)
         self.nbins = int(nbins)
         self.min_samples = int(min_samples)
-        self.counts = np.zeros((self.nchannels, self.nbins), dtype=np.int64)
-        self.sums = np.zeros((self.nchannels, self.nbins), dtype=np.float64)
-        self.sums4 = np.zeros((self.nchannels, self.nbins), dtype=np.float64)
-        empty = np.zeros((0, self.nchannels))
-        self.update(empty, empty, np.zeros((0, self.nchannels), dtype=np.bool_))
+        self.counts = np.zeros((self.channels, self.nbins), dtype=np.int64)
+        self.sums = np.zeros((self.channels, self.nbins), dtype=np.float64)
+        self.sums4 = np.zeros((self.channels, self.nbins), dtype=np.float64)
+        empty = np.zeros((0, self.channels))
+        self.update(empty, empty, np.zeros((0, self.channels), dtype=np.bool_))
 
     def update(self, v_lsb, e_lsb, valid):
-        """Add one block: input ``v_lsb`` and noise ``e_lsb`` in LSB, ``valid`` mask, all (frames, nchannels)."""
+        """Add one block: input ``v_lsb`` and noise ``e_lsb`` in LSB, ``valid`` mask, all (frames, channels)."""
         _bin_update(
             np.ascontiguousarray(v_lsb, dtype=np.float64),
             np.ascontiguousarray(e_lsb, dtype=np.float64),
@@ -98,7 +98,7 @@ class NoiseModulation:
         )
 
     def bin_means_lsb2(self):
-        """Mean e² per bin in LSB², shape (nchannels, nbins); NaN for bins below ``min_samples``."""
+        """Mean e² per bin in LSB², shape (channels, nbins); NaN for bins below ``min_samples``."""
         with np.errstate(invalid="ignore", divide="ignore"):
             means = self.sums / self.counts
         return np.where(self.counts >= self.min_samples, means, np.nan)

@@ -181,13 +181,13 @@ def modulation_theory_lsb2(a, dither_id, scale=1.0, coefs=()):
 
 def draw_ntf(ax, coefs, samplerate, label=None, points=2048):
     """Draw |NTF| in dB over 0..fs/2 (kHz) with the 0 dB line and, above 44.1 kHz, the 20 kHz marker."""
-    freqs = np.linspace(0.0, samplerate / 2, points + 1)
+    freqs_hz = np.linspace(0.0, samplerate / 2, points + 1)
     b = np.concatenate(([1.0], -np.asarray(coefs, dtype=float)))
-    w = 2 * np.pi * freqs / samplerate
+    w = 2 * np.pi * freqs_hz / samplerate
     ntf = np.abs(np.exp(-1j * np.outer(w, np.arange(b.size))) @ b)
     gain_db = 20 * np.log10(np.maximum(ntf, 1e-12))
     noise_gain_db = 10 * math.log10(float(np.sum(b * b)))
-    ax.plot(freqs / 1000.0, gain_db, lw=1.5,
+    ax.plot(freqs_hz / 1000.0, gain_db, lw=1.5,
             label=f"{label + ': ' if label else ''}|NTF|, total noise gain {noise_gain_db:+.1f} dB")
     ax.axhline(0.0, color="0.3", lw=0.9, label="0 dB (no shaping)")
     _mark_audible_limit(ax, samplerate, scale=1e-3)
@@ -197,7 +197,7 @@ def draw_ntf(ax, coefs, samplerate, label=None, points=2048):
     ax.set_xlabel("frequency, kHz")
     ax.set_ylabel("noise transfer |NTF|, dB")
     ax.legend(loc="lower right", fontsize=8)
-    return freqs, gain_db
+    return freqs_hz, gain_db
 
 
 def ntf_title(shaper_id, samplerate, design_samplerate_hz=None):

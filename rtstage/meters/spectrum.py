@@ -26,11 +26,11 @@ def default_segment_frames(samplerate):
 
 
 class WelchSpectrum:
-    """One-sided PSD of ``nchannels`` channels, averaged over Hann segments.
+    """One-sided PSD of ``channels`` channels, averaged over Hann segments.
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
     samplerate : float
         Sample rate in Hz.
@@ -48,8 +48,8 @@ class WelchSpectrum:
     zero-padded segment.
     """
 
-    def __init__(self, nchannels, samplerate, segment_frames=None):
-        self.nchannels = int(nchannels)
+    def __init__(self, channels, samplerate, segment_frames=None):
+        self.channels = int(channels)
         self.samplerate = float(samplerate)
         self.segment_frames = int(segment_frames or default_segment_frames(samplerate))
         if self.segment_frames < 4 or self.segment_frames % 2:
@@ -57,13 +57,13 @@ class WelchSpectrum:
         self.hop_frames = self.segment_frames // 2
         self.window = get_window("hann", self.segment_frames)
         self.freqs_hz = np.fft.rfftfreq(self.segment_frames, 1.0 / self.samplerate)
-        self._buf = np.zeros((self.segment_frames, self.nchannels), dtype=np.float64)
+        self._buf = np.zeros((self.segment_frames, self.channels), dtype=np.float64)
         self._fill = 0
-        self._acc = np.zeros((self.freqs_hz.size, self.nchannels), dtype=np.float64)
+        self._acc = np.zeros((self.freqs_hz.size, self.channels), dtype=np.float64)
         self.nsegments = 0
 
     def update(self, x):
-        """Take one block ``x`` of shape (frames, nchannels)."""
+        """Take one block ``x`` of shape (frames, channels)."""
         n = x.shape[0]
         pos = 0
         while pos < n:
@@ -85,13 +85,13 @@ class WelchSpectrum:
         return scale
 
     def psd(self):
-        """One-sided PSD, shape (nchannels, nfreqs), in (full-scale units)² per Hz."""
+        """One-sided PSD, shape (channels, nfreqs), in (full-scale units)² per Hz."""
         if self.nsegments:
             return (self._acc * self._density_scale(self.window)[:, None]).T / self.nsegments
         if self._fill < 2:
-            return np.zeros((self.nchannels, self.freqs_hz.size))
+            return np.zeros((self.channels, self.freqs_hz.size))
         window = get_window("hann", self._fill)
-        padded = np.zeros((self.segment_frames, self.nchannels))
+        padded = np.zeros((self.segment_frames, self.channels))
         padded[: self._fill] = self._buf[: self._fill] * window[:, None]
         spectrum = np.fft.rfft(padded, axis=0)
         return ((spectrum.real**2 + spectrum.imag**2) * self._density_scale(window)[:, None]).T

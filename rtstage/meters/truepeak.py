@@ -42,7 +42,7 @@ ANNEX2_PHASES = np.array(
 def _peak_update(x, nframes, phases, ring, pos, true_peak, sample_peak):
     """Advance the interpolator over ``x[:nframes]`` and raise the peaks in place.
 
-    ``ring`` (nchannels, 24) holds the last 12 inputs per channel twice
+    ``ring`` (channels, 24) holds the last 12 inputs per channel twice
     (slots j and j + 12), so that the window newest-to-oldest is the
     contiguous run ``ring[c, p + 12 - k]``, k = 0..11, with ``p = pos[0]`` the
     slot of the newest one; ``pos[1]`` counts the frames seen so far: a value
@@ -87,11 +87,11 @@ def _peak_update(x, nframes, phases, ring, pos, true_peak, sample_peak):
 
 
 class PeakMeter:
-    """Sample peak and 4× oversampled true peak of ``nchannels`` channels.
+    """Sample peak and 4× oversampled true peak of ``channels`` channels.
 
     Parameters
     ----------
-    nchannels : int
+    channels : int
         Channel count.
 
     Notes
@@ -109,16 +109,16 @@ class PeakMeter:
     overshoot that belongs to the padding, not to the signal.
     """
 
-    def __init__(self, nchannels):
-        self.nchannels = int(nchannels)
-        self._ring = np.zeros((self.nchannels, 2 * TAPS_PER_PHASE), dtype=np.float64)
+    def __init__(self, channels):
+        self.channels = int(channels)
+        self._ring = np.zeros((self.channels, 2 * TAPS_PER_PHASE), dtype=np.float64)
         self._pos = np.zeros(2, dtype=np.int64)
-        self._true_peak = np.zeros(self.nchannels, dtype=np.float64)
-        self._sample_peak = np.zeros(self.nchannels, dtype=np.float64)
-        self.update(np.zeros((0, self.nchannels)))
+        self._true_peak = np.zeros(self.channels, dtype=np.float64)
+        self._sample_peak = np.zeros(self.channels, dtype=np.float64)
+        self.update(np.zeros((0, self.channels)))
 
     def update(self, x):
-        """Take one block ``x`` of shape (frames, nchannels), float64, finite."""
+        """Take one block ``x`` of shape (frames, channels), float64, finite."""
         x = np.ascontiguousarray(x, dtype=np.float64)
         _peak_update(x, x.shape[0], ANNEX2_PHASES, self._ring, self._pos, self._true_peak, self._sample_peak)
 

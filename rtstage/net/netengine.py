@@ -197,7 +197,7 @@ def _shared_block(engine, max_frames, meter_frames, publish):
     the meter ring) then drive and read this engine exactly as they do a live one.
     ``publish`` is the engine's publish hook (the seqlock write into this block).
     """
-    block = S.SharedBlock(engine.nchannels, engine.width, max_frames, 0, 0, meter_frames)
+    block = S.SharedBlock(engine.channels, engine.container_bits, max_frames, 0, 0, meter_frames)
     engine.use_memory(block.kernel, publish=lambda iparams, fparams: publish(block, iparams, fparams))
     block.pending_ip[:] = block.kernel.iparams
     block.pending_fp[:] = block.kernel.fparams
@@ -402,7 +402,7 @@ class NetEngine(ControlSurface):
             check_source(src, int(self.samplerate))
         self.samplerate = int(self.samplerate)
         self.channels = int(self.channels)
-        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_container=True)
+        self.engine = Engine(self.settings, self.channels, self.samplerate, exact_format=True)
         self.settings = self.engine.settings
         rate = self.samplerate
         if self.rtp_out_options is not None:
@@ -457,9 +457,9 @@ class NetEngine(ControlSurface):
         ctl[C_STOP] = 1  # the producer returns before its first deadline
         ts = np.zeros(2, dtype=np.int64)
         st = K.KernelState(self.channels)
-        kind, freq, amp, seed = self._gen_params()
+        kind, freq_hz, amp, seed = self._gen_params()
         mode = MODE_FILE if getattr(self.source, "kind", None) == "file" else MODE_GENERATOR
-        _produce_loop(ctl, self.clock_id, 0, 0, self.samplerate, self.fpp, mode, kind, freq, amp, seed, self._src,
+        _produce_loop(ctl, self.clock_id, 0, 0, self.samplerate, self.fpp, mode, kind, freq_hz, amp, seed, self._src,
                       0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(), self.net_ring, self.tap_ring, ts,
                       *_seqlock(self.block), self.fpp, self.block.meter_x, self.block.meter_words,
                       self.block.requantized)
@@ -523,11 +523,11 @@ class NetEngine(ControlSurface):
             self._start_receiver()
         else:
             st = self.engine.state
-            kind, freq, amp, seed = self._gen_params()
+            kind, freq_hz, amp, seed = self._gen_params()
             mode = MODE_FILE if self.source.kind == "file" else MODE_GENERATOR
 
             def produce():
-                _produce_loop(self.ctl, self.clock_id, q0, r0, rate, self.fpp, mode, kind, freq, amp, seed, self._src,
+                _produce_loop(self.ctl, self.clock_id, q0, r0, rate, self.fpp, mode, kind, freq_hz, amp, seed, self._src,
                               1 if self.loop else 0, self.xbuf, self.ybuf, self.vq, self.genw, *st.arrays(),
                               self.net_ring, self.tap_ring, np.zeros(2, dtype=np.int64), *_seqlock(self.block),
                               self.lead_frames, self.block.meter_x, self.block.meter_words, self.block.requantized)

@@ -103,7 +103,7 @@ def list_segments(path):
     return sorted(out)
 
 
-def segment_frames_for(samplerate, nchannels, bytes_per_sample, rotate_s=None, rotate_mb=None):
+def segment_frames_for(samplerate, channels, bytes_per_sample, rotate_s=None, rotate_mb=None):
     """Frames per segment from a duration and/or a size (the smaller wins); None without rotation.
 
     The size counts the PCM words plus a 44-byte WAV header (the file size of
@@ -113,7 +113,7 @@ def segment_frames_for(samplerate, nchannels, bytes_per_sample, rotate_s=None, r
     if rotate_s is not None:
         candidates.append(int(round(float(rotate_s) * samplerate)))
     if rotate_mb is not None:
-        candidates.append((int(float(rotate_mb) * 1_000_000) - WAV_HEADER_BYTES) // (nchannels * bytes_per_sample))
+        candidates.append((int(float(rotate_mb) * 1_000_000) - WAV_HEADER_BYTES) // (channels * bytes_per_sample))
     if not candidates:
         return None
     frames = min(candidates)
@@ -297,7 +297,7 @@ def segment_state(snapshot, boundary, log=None):
     return out
 
 
-def segment_engine(state, start_frame, nchannels, samplerate, settings_type=None):
+def segment_engine(state, start_frame, channels, samplerate, settings_type=None):
     """An engine positioned at ``state["frame"]`` with the kernel state of a segment sidecar.
 
     Parameters
@@ -306,7 +306,7 @@ def segment_engine(state, start_frame, nchannels, samplerate, settings_type=None
         The sidecar's ``state_at_start``.
     start_frame : int
         The segment's first sample index (B).
-    nchannels, samplerate : int
+    channels, samplerate : int
         Stream geometry.
 
     Returns
@@ -323,7 +323,7 @@ def segment_engine(state, start_frame, nchannels, samplerate, settings_type=None
     values = state["values"]
     settings = params.settings_with(EngineSettings(seed=values["seed"]), values)
     s0 = int(state["frame"])
-    engine = Engine(settings, nchannels, samplerate, start_frame=s0)
+    engine = Engine(settings, channels, samplerate, start_frame=s0)
     kst = engine.state
     if not state.get("rest"):
         for name in STATE_ARRAYS:
@@ -394,7 +394,7 @@ class RotatingTapWriter:
         self._stream = None
         self._seg = None
         self._reason = None
-        self._chunk = np.zeros((CHUNK_FRAMES, block.nchannels), dtype=block.out_dtype)
+        self._chunk = np.zeros((CHUNK_FRAMES, block.channels), dtype=block.out_dtype)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="rtstage-tap", daemon=True)
         self.error = None
@@ -409,7 +409,7 @@ class RotatingTapWriter:
         name = segment_path(self.path, start, self.run_id)
         stream = open_stream(name, "tap segment", finalize=self._finish_file)
         try:
-            self._file = sf.SoundFile(stream.tmp, "w", self.samplerate, self.block.nchannels, self.subtype,
+            self._file = sf.SoundFile(stream.tmp, "w", self.samplerate, self.block.channels, self.subtype,
                                       format=self.format)
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
             stream.discard()

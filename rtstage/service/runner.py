@@ -112,12 +112,12 @@ def rotation_wanted(args):
     return bool(args.tap) and (args.tap_rotate_s is not None or args.tap_rotate_mb is not None)
 
 
-def segment_frames(args, samplerate, nchannels, bits):
+def segment_frames(args, samplerate, channels, bits):
     """Frames per tap segment for these options."""
     from .rotate import segment_frames_for
 
     bytes_per_sample = 2 if bits <= 16 else 3
-    return segment_frames_for(samplerate, nchannels, bytes_per_sample, args.tap_rotate_s, args.tap_rotate_mb)
+    return segment_frames_for(samplerate, channels, bytes_per_sample, args.tap_rotate_s, args.tap_rotate_mb)
 
 
 def rotated_outputs(args):
@@ -148,7 +148,7 @@ def configure_engine(engine, args):
     holder = {"run_id": getattr(args, "segment_run_id", None) or new_run_id()}
 
     def factory(path, block, samplerate, bits, info=None):
-        frames = segment_frames(args, samplerate, block.nchannels, bits)
+        frames = segment_frames(args, samplerate, block.channels, bits)
         snapshots = BoundarySnapshots(block, engine.blocksize, samplerate, frames)
         writer = RotatingTapWriter(path, block, samplerate, bits, info, segment_frames=frames, keep=args.tap_keep,
                                    run_id=holder["run_id"], snapshots=snapshots, log=lambda: holder.get("log"),
