@@ -88,16 +88,14 @@ class Announcements:
         args = self.args
         if args.rtp_sdp:
             plan = getattr(args, "output_plan", None)
-            if plan is not None:  # checked at start with the run's other outputs; written atomically
-                with plan:
-                    with plan.open(args.rtp_sdp, "w") as f:
-                        f.write(self.text)
-            else:
-                try:
-                    with open(args.rtp_sdp, "w", newline="") as f:
-                        f.write(self.text)
-                except OSError as exc:
-                    raise RtstageError(f"cannot write SDP file {args.rtp_sdp}: {exc.strerror or exc}") from None
+            if plan is None:  # a caller that did not check the run's outputs first
+                from ..files.policy import OutputPlan
+
+                plan = OutputPlan("writing the session description", overwrite=getattr(args, "overwrite", False))
+                plan.add_file(args.rtp_sdp, "--rtp-sdp")
+            with plan:  # checked at start with the run's other outputs; written atomically
+                with plan.open(args.rtp_sdp, "w") as f:
+                    f.write(self.text)
             log(f"wrote the session description {args.rtp_sdp}")
         if args.rtp_sap:
             from ..net.sap import SapAnnouncer, parse_sap_target
@@ -224,13 +222,16 @@ class StatusLine:
 
 
 def write_status(args, status):
+    """The final status: to ``--status-file`` through the output policy (atomic), else one line on stderr."""
     text = json.dumps(status)
-    if args.status_file and getattr(args, "output_plan", None) is not None:
+    if args.status_file:
         from .run import write_status_file
 
-        write_status_file(args, json.dumps(status))
-    elif args.status_file:
-        with open(args.status_file, "w") as f:
-            f.write(text + "\n")
+        if getattr(args, "output_plan", None) is None:  # a caller that did not check the run's outputs first
+            from ..files.policy import OutputPlan
+
+            args.output_plan = OutputPlan("writing the status file", overwrite=getattr(args, "overwrite", False))
+            args.output_plan.add_file(args.status_file, "--status-file")
+        write_status_file(args, text)
     else:
         print(text, file=sys.stderr, flush=True)

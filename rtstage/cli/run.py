@@ -249,8 +249,11 @@ class ControlWiring:
         args = self.args
         try:
             if args.automation_log:
-                self.writer = (rotating_automation_log(self.engine, args, FORMAT_VERSION)
-                               or AutomationWriter(args.automation_log, self.engine.samplerate))
+                self.writer = rotating_automation_log(self.engine, args, FORMAT_VERSION)
+                if self.writer is None:  # a stream of the run's output plan: sealed into place when it closes
+                    plan = getattr(args, "output_plan", None)
+                    stream = plan.stream(args.automation_log) if plan is not None else None
+                    self.writer = AutomationWriter(args.automation_log, self.engine.samplerate, stream=stream)
             self.target = LiveTarget(self.engine, automation_log=self.writer).start()
             presets = PresetStore(args.control_preset_dir) if args.control_preset_dir else None
             controller = self.controller = Controller(self.target, presets)

@@ -128,40 +128,63 @@ def load_automation(path, samplerate=None):
 
 
 class AutomationWriter:
-    """Append applied changes to an automation file, one flushed line each.
+    """Append applied changes to an automation file, one whole line each.
 
     Parameters
     ----------
     path : str
-        File to create (truncated if it exists).
+        File to create (an existing one is replaced when the log is sealed).
     samplerate : int
         Sample rate of the session in Hz, written in the header.
+    write_path : str or None
+        Write here instead (a temporary file the caller renames into place
+        itself).
+    stream : rtstage.files.policy.StreamOutput or None
+        The stream to write into (from the caller's
+        :meth:`~rtstage.files.policy.OutputPlan.stream`); None opens one for
+        ``path``.  Ignored with ``write_path``.
 
     Notes
     -----
     Writing is file I/O: call :meth:`write` from a control or housekeeping
     thread, never from the audio callback.
+
+    The log is a stream of the output policy: while the session lasts it is
+    written under a hidden temporary name beside ``path``, and :meth:`close`
+    seals it onto ``path``.  Each line is written whole; a write error (a
+    full disk, a file-size limit) seals the lines written so far at once,
+    with one warning line, and the changes that follow are not logged.
     """
 
-    def __init__(self, path, samplerate, write_path=None):
+    def __init__(self, path, samplerate, write_path=None, stream=None):
+        from ..files.policy import LineStream, open_stream
+
         self.path = path
         self.samplerate = int(samplerate)
+        if write_path is None and stream is None:
+            stream = open_stream(path, "automation log")
         try:
-            self._file = open(write_path or path, "w", encoding="utf-8")
+            self._lines = LineStream(write_path or stream)
         except OSError as exc:
+            if stream is not None:
+                stream.discard()
             raise RtstageError(f"cannot write automation log {path}: {exc.strerror}") from None
-        self._file.write(json.dumps({"rtstage_automation": FORMAT_VERSION, "samplerate": self.samplerate}) + "\n")
-        self._file.flush()
+        if stream is not None:
+            stream.finalize = self._lines.close_file
+        self._lines.write_line(json.dumps({"rtstage_automation": FORMAT_VERSION, "samplerate": self.samplerate}))
+
+    @property
+    def error(self):
+        """The OSError that stopped the log, or None."""
+        return self._lines.error
 
     def write(self, frame, values):
         """Record that ``values`` took effect at sample index ``frame``."""
-        self._file.write(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")) + "\n")
-        self._file.flush()
+        self._lines.write_line(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")))
 
     def close(self):
-        """Flush and close the file."""
-        if not self._file.closed:
-            self._file.close()
+        """Close the file and seal it onto its name."""
+        self._lines.close()
 
     def __enter__(self):
         return self

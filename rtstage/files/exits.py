@@ -25,7 +25,7 @@ import sys
 import traceback
 
 from ..errors import RtstageError, RuntimeFailure
-from .policy import Interrupted, remove_live_temps
+from .policy import Interrupted, remove_live_temps, seal_open_streams
 
 EXIT_FAILURE = 1
 EXIT_USAGE = 2
@@ -132,7 +132,9 @@ def silence_stdout():
 def run_guarded(func, argv=None):
     """Run ``func()`` and turn every way it can end into an exit status and at most one line on stderr.
 
-    Temporary output files still registered are removed on every way out.
+    Temporary output files still registered are removed on every way out;
+    streams still open (a live recording whose writer was never closed) are
+    sealed into place instead (:func:`rtstage.files.policy.seal_open_streams`).
     """
     try:
         status = int(func() or 0)
@@ -172,4 +174,5 @@ def run_guarded(func, argv=None):
         say(f"internal error ({type(exc).__name__}: {exc}){where}; please report it")
         return EXIT_FAILURE
     finally:
+        seal_open_streams()
         remove_live_temps()

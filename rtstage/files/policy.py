@@ -40,6 +40,34 @@ the umask gives to ordinary files (0666 & ~umask), like any program's output.
 Exit statuses (the command line's ``main`` reads ``exit_status``): 2 for a
 refused output (usage), 1 for a failed write (I/O), 128 + signal number for
 an interruption (130 SIGINT, 143 SIGTERM, 129 SIGHUP).
+
+Streams
+-------
+A file written while a live run lasts (the tap, its segments, the
+automation log) is a :class:`StreamOutput`, from :meth:`OutputPlan.stream`
+(an output the plan declared and checked) or :func:`open_stream` (a file the
+run names as it goes, such as the next segment)::
+
+    stream = plan.stream(tap)          # the temporary file to write: stream.tmp
+    ...                                # the run writes stream.tmp for as long as it lasts
+    stream.seal()                      # fsync, rename onto the final name, fsync the folder
+
+The final name appears only when the stream is sealed, whole.  A recording
+of live audio cannot be made again, so a stream is never removed the way
+the temporary file of a render is: it is not registered for removal, and on
+every way out the part already written is sealed into place.  The writer
+seals it when the run stops (SIGINT and SIGTERM stop a live run normally;
+a signal that interrupts a command, :class:`Interrupted`, leaves a stream
+to be sealed like any exception); a write error (a full disk, ``ENOSPC``; a
+file-size limit, ``EFBIG``) makes the writer seal what it has at once, with
+one warning line saying the file was cut short; a command that ends with a
+stream its writer never closed (an exception) gets it sealed by
+:func:`seal_open_streams`, which the command line's ``run_guarded`` calls on
+every way out (after the writer's ``finalize`` closed it: a sound file's
+header is finalized by closing it), again with one warning line.  Only a
+stream that never received a byte is removed instead.  Files that belong to
+a stream and are written whole when it ends (a segment's sidecar) go
+through :func:`write_whole_file`: whole or not at all.
 """
 
 import contextlib
@@ -51,6 +79,7 @@ import tempfile
 import threading
 
 from ..errors import RtstageError, RuntimeFailure
+from ..log import log
 
 __all__ = [
     "OutputPlan",
@@ -65,6 +94,12 @@ __all__ = [
     "file_mode",
     "io_error",
     "write_failure",
+    "failure_reason",
+    "StreamOutput",
+    "LineStream",
+    "open_stream",
+    "seal_open_streams",
+    "write_whole_file",
 ]
 
 TEMP_PREFIX = ".rtstage-"
@@ -220,18 +255,50 @@ def file_mode():
     return 0o666 & ~_read_umask()
 
 
-def io_error(path, exc, what="write"):
-    """A :class:`WriteFailed` naming the path and the reason of an OSError (full disk and size limit said plainly)."""
+def _os_reason(exc):
+    """Plain words for the reason of an OSError (full disk and size limit said plainly)."""
     code = getattr(exc, "errno", None)
     if code == errno.ENOSPC:
-        reason = "no space left on the device"
-    elif code == errno.EFBIG:
-        reason = "file too large (file-size limit reached)"
-    elif code == errno.EDQUOT:
-        reason = "disk quota exceeded"
-    else:
-        reason = getattr(exc, "strerror", None) or str(exc)
-    return WriteFailed(f"cannot {what} {path}: {reason}; nothing was written")
+        return "no space left on the device"
+    if code == errno.EFBIG:
+        return "file too large (file-size limit reached)"
+    if code == errno.EDQUOT:
+        return "disk quota exceeded"
+    return getattr(exc, "strerror", None) or str(exc)
+
+
+def io_error(path, exc, what="write"):
+    """A :class:`WriteFailed` naming the path and the reason of an OSError (full disk and size limit said plainly)."""
+    return WriteFailed(f"cannot {what} {path}: {_os_reason(exc)}; nothing was written")
+
+
+def _library_reason(path, tmp):
+    """The reason behind a library's bare error code while writing ``tmp``, from the file system, or None."""
+    import resource
+
+    folder = os.path.dirname(os.path.abspath(tmp or path))
+    try:
+        size = os.path.getsize(tmp) if tmp else 0
+    except OSError:
+        size = 0
+    soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+    if soft != resource.RLIM_INFINITY and size >= soft - 65536:
+        return _os_reason(OSError(errno.EFBIG, "File too large"))
+    try:
+        st = os.statvfs(folder)
+        if st.f_bavail * st.f_frsize < 1 << 20:
+            return _os_reason(OSError(errno.ENOSPC, "No space left on device"))
+    except OSError:
+        pass
+    return None
+
+
+def failure_reason(path, tmp, exc):
+    """Plain words for why writing ``tmp`` (destined for ``path``) failed: from errno, or from the file system
+    for a library's bare error code (see :func:`write_failure`)."""
+    if isinstance(exc, OSError) and exc.errno is not None:
+        return _os_reason(exc)
+    return _library_reason(path, tmp) or str(exc).strip() or type(exc).__name__
 
 
 def write_failure(path, tmp, exc):
@@ -243,22 +310,9 @@ def write_failure(path, tmp, exc):
     """
     if isinstance(exc, OSError) and exc.errno is not None:
         return io_error(path, exc)
-    import resource
-
-    folder = os.path.dirname(os.path.abspath(tmp or path))
-    try:
-        size = os.path.getsize(tmp) if tmp else 0
-    except OSError:
-        size = 0
-    soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
-    if soft != resource.RLIM_INFINITY and size >= soft - 65536:
-        return io_error(path, OSError(errno.EFBIG, "File too large"))
-    try:
-        st = os.statvfs(folder)
-        if st.f_bavail * st.f_frsize < 1 << 20:
-            return io_error(path, OSError(errno.ENOSPC, "No space left on device"))
-    except OSError:
-        pass
+    reason = _library_reason(path, tmp)
+    if reason is not None:
+        return WriteFailed(f"cannot write {path}: {reason}; nothing was written")
     detail = str(exc).strip() or type(exc).__name__
     return WriteFailed(f"cannot write {path}: {detail}; nothing was written")
 
@@ -539,6 +593,29 @@ class OutputPlan:
         with self.open(target, "w") as f:
             f.write(text)
 
+    def stream(self, target, finalize=None):
+        """A :class:`StreamOutput` for the declared output ``target``: written while a run lasts, sealed into place.
+
+        Takes over the output's temporary file (it leaves the plan's clean-up:
+        :meth:`discard`, :meth:`commit` and a signal never remove it).  See
+        the module notes, *Streams*.
+
+        Parameters
+        ----------
+        target : str or declared output
+            An output of this plan (checked).
+        finalize : callable or None
+            Closes whatever writes the stream (see :class:`StreamOutput`).
+        """
+        if not self._checked:
+            raise RuntimeError("OutputPlan.check() must run before writing")
+        out = self._find(target)
+        tmp = self._prepare_tmp(out)
+        stream = StreamOutput(out.path, out.what, tmp=tmp, finalize=finalize)
+        _forget(tmp)
+        out.tmp = None
+        return stream
+
     def commit(self):
         """Rename every written output onto its name, fsync the folders, and remove unused temporary files."""
         folders = set()
@@ -580,6 +657,329 @@ class OutputPlan:
         else:
             self.discard()
         return False
+
+
+# -- streams: files written while a live run lasts (see the module notes) ----------------------------------
+
+_streams = {}
+_streams_lock = threading.Lock()
+
+
+def _fsync_path(path):
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _describe(exc):
+    """A few words for what ended a stream early."""
+    if isinstance(exc, Interrupted):
+        return f"interrupted by {signal.Signals(exc.signum).name}"
+    if isinstance(exc, KeyboardInterrupt):
+        return "interrupted"
+    text = " ".join(str(exc).split())
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+def _is_write_error(exc):
+    """True for an error raised by writing itself: an OSError, or an error of the sound-file library."""
+    return isinstance(exc, OSError) or type(exc).__module__ == "soundfile"
+
+
+class StreamOutput:
+    """One output written as a stream while a live run lasts, sealed into place when it ends.
+
+    Write :attr:`tmp` (a hidden ``.rtstage-*.part`` file in the output's own
+    folder, with the mode the umask gives); :meth:`seal` makes it appear at
+    :attr:`path`, whole, at once.  Never registered for removal: a live
+    recording is sealed, not removed, on every way out (module notes,
+    *Streams*).  Usable as a context manager: a normal exit seals; an
+    exception seals what was written (after the block closed its file) and
+    says so in one line: a write error (full disk, file-size limit) becomes a
+    :class:`WriteFailed` naming the part kept, any other exception a warning
+    line before it propagates.
+
+    Parameters
+    ----------
+    path : str
+        The final name (already checked by the caller's plan, or named by
+        rule during the run, such as the next segment).
+    what : str
+        What it is, for messages (``"tap"``, ``"automation log"``).
+    tmp : str or None
+        A temporary file already created in ``path``'s folder (by a plan);
+        None creates one.
+    finalize : callable or None
+        Closes whatever writes :attr:`tmp` (stops a writer thread, closes a
+        sound file so that its header is final); called by :meth:`abort`
+        before sealing.  It must not seal.
+
+    Attributes
+    ----------
+    sealed : bool
+        True once sealed (or discarded).
+    cut_short : str or None
+        Why the stream was sealed early, when it was.
+    """
+
+    def __init__(self, path, what="output", tmp=None, finalize=None):
+        self.path = os.fspath(path)
+        self.what = what
+        self.finalize = finalize
+        self.sealed = False
+        self.cut_short = None
+        self._lock = threading.Lock()
+        if tmp is None:
+            try:
+                fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".part", dir=self.folder)
+            except OSError as exc:
+                raise io_error(self.path, exc, "create") from None
+            os.close(fd)
+        self.tmp = tmp
+        with _streams_lock:
+            _streams[tmp] = self
+        try:
+            os.chmod(tmp, file_mode())
+        except OSError as exc:
+            self.discard()
+            raise io_error(self.path, exc, "create") from None
+
+    @property
+    def folder(self):
+        """The output's folder (where the temporary file lives too)."""
+        return os.path.dirname(os.path.abspath(self.path))
+
+    def _claim(self):
+        with self._lock:
+            if self.sealed:
+                return False
+            self.sealed = True
+        with _streams_lock:
+            _streams.pop(self.tmp, None)
+        return True
+
+    def seal(self, cut_short=None):
+        """fsync the written part, rename it onto :attr:`path`, fsync the folder; True on the call that sealed.
+
+        Idempotent (later calls return False).  With ``cut_short`` (why the
+        writing stopped early) one warning line says so.  Raises
+        :class:`WriteFailed` when the rename fails (the part written stays in
+        :attr:`tmp`, and the message names it).
+        """
+        if not self._claim():
+            return False
+        self.cut_short = cut_short
+        try:
+            _fsync_path(self.tmp)
+        except OSError as exc:  # the data may not all be on disk; it is still put in place, and said
+            cut_short = f"{cut_short}; " if cut_short else ""
+            cut_short += f"syncing it failed: {_os_reason(exc)}"
+        try:
+            os.replace(self.tmp, self.path)
+        except OSError as exc:
+            raise WriteFailed(f"cannot move {self.what} {self.path} into place: {_os_reason(exc)}; what was "
+                              f"written is kept in {self.tmp}") from None
+        _fsync_folder(self.folder)
+        if cut_short:
+            log(f"warning: {self.what} {self.path} cut short: {cut_short}; the part written is kept there")
+        return True
+
+    def abort(self, reason):
+        """Seal what was written when its writer could not finish (one warning line); True when it sealed.
+
+        Calls :attr:`finalize` first.  A stream that never received a byte is
+        removed instead (nothing was recorded).
+        """
+        if self.sealed:
+            return False
+        if self.finalize is not None:
+            try:
+                self.finalize()
+            except Exception as exc:  # what is on disk is still sealed
+                reason = f"{reason}; closing it failed: {_describe(exc)}"
+        try:
+            empty = os.path.getsize(self.tmp) == 0
+        except OSError:
+            empty = False
+        if empty:
+            self.discard()
+            return False
+        return self.seal(cut_short=reason)
+
+    def discard(self):
+        """Remove the temporary file of a stream that holds nothing (its writer could not even open it)."""
+        if not self._claim():
+            return
+        try:
+            os.unlink(self.tmp)
+        except OSError:
+            pass
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.seal()
+            return False
+        if _is_write_error(exc):
+            reason = failure_reason(self.path, self.tmp, exc)
+            if self.finalize is not None:
+                try:
+                    self.finalize()
+                except Exception:
+                    pass
+            self.seal()
+            raise WriteFailed(f"cannot write {self.path}: {reason}; the part written before is kept in "
+                              f"{self.path}") from None
+        self.abort(_describe(exc))
+        return False
+
+
+def open_stream(path, what="output", finalize=None):
+    """A :class:`StreamOutput` for ``path`` outside any plan: a file a run names as it goes (the next segment).
+
+    The caller has checked ``path`` (the plan checked the first of a series;
+    the later ones are new names by rule).
+    """
+    return StreamOutput(path, what, finalize=finalize)
+
+
+def seal_open_streams(reason="the command ended before its writer closed it"):
+    """Seal every stream still open (after its ``finalize``), one warning line each; returns how many were sealed.
+
+    Called on every way out of a command (``rtstage.files.exits.run_guarded``),
+    before the temporary files of unfinished outputs are removed.
+    """
+    with _streams_lock:
+        streams = list(_streams.values())
+    sealed = 0
+    for stream in streams:
+        try:
+            sealed += bool(stream.abort(reason))
+        except RtstageError as exc:
+            log(f"warning: {exc}")
+    return sealed
+
+
+class LineStream:
+    """Text lines appended to a stream, each written whole: a reader of the sealed file never sees half a line.
+
+    Each line goes straight to the file (no buffer, so a line is either
+    written or not).  A write error (full disk, file-size limit) cuts the
+    file back to its last whole line, seals it with one warning line, and
+    drops the lines that follow (:attr:`error` holds the error).
+
+    Parameters
+    ----------
+    target : StreamOutput or str
+        The stream (sealed by :meth:`close`), or a plain path the caller
+        renames into place itself.
+    """
+
+    def __init__(self, target):
+        self.stream = target if isinstance(target, StreamOutput) else None
+        self.name = self.stream.path if self.stream is not None else os.fspath(target)
+        path = self.stream.tmp if self.stream is not None else os.fspath(target)
+        self._fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o666)
+        self._lock = threading.Lock()
+        self._size = 0
+        self.lines = 0
+        self.error = None
+
+    def write_line(self, text):
+        """Append ``text`` and a newline; False when the line could not be written (see the class notes)."""
+        data = (text + "\n").encode("utf-8")
+        with self._lock:
+            if self._fd is None:
+                return False
+            try:
+                view = memoryview(data)
+                while view:
+                    view = view[os.write(self._fd, view):]
+            except OSError as exc:
+                self.error = exc
+                self._cut(_os_reason(exc))
+                return False
+            self._size += len(data)
+            self.lines += 1
+            return True
+
+    def _cut(self, reason):
+        try:
+            os.ftruncate(self._fd, self._size)
+        except OSError:
+            pass
+        self._close_fd()
+        if self.stream is not None:
+            self.stream.seal(cut_short=f"{reason}; {self.lines} whole lines written")
+
+    def close_file(self):
+        """Close the file without sealing (a stream's ``finalize``)."""
+        with self._lock:
+            self._close_fd()
+
+    def _close_fd(self):
+        if self._fd is not None:
+            try:
+                os.close(self._fd)
+            except OSError:
+                pass
+            self._fd = None
+
+    @property
+    def closed(self):
+        """True once closed (or cut short)."""
+        return self._fd is None
+
+    def close(self):
+        """Close the file and seal the stream (a no-op once done)."""
+        self.close_file()
+        if self.stream is not None:
+            self.stream.seal()
+
+
+def write_whole_file(path, data):
+    """Write ``data`` (str, UTF-8, or bytes) to ``path`` whole or not at all, outside any plan.
+
+    For a small file that goes with a stream and is written when it ends (a
+    segment's or a tap's sidecar): a temporary file in the same folder with
+    the umask's mode, fsync, rename, fsync the folder.  The temporary file is
+    registered while it exists (a signal removes it) and removed on failure;
+    an OSError becomes :class:`WriteFailed`.
+    """
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    if isinstance(data, str):
+        data = data.encode("utf-8")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".part", dir=folder)
+    except OSError as exc:
+        raise io_error(path, exc, "create") from None
+    _register(tmp, path)
+    try:
+        try:
+            os.fchmod(fd, file_mode())
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+        _forget(tmp)
+    except BaseException as exc:
+        _forget(tmp)
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        if isinstance(exc, OSError):
+            raise io_error(path, exc) from None
+        raise
+    _fsync_folder(folder)
 
 
 def _existing_ancestor(folder):

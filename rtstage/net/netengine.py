@@ -209,10 +209,18 @@ def _seqlock(block):
 
 
 class _TapThread:
-    """Drains the tap ring into a sound file (PCM_16 up to 16-bit words, else PCM_24) and writes the gaps sidecar."""
+    """Drains the tap ring into a sound file (PCM_16 up to 16-bit words, else PCM_24) and writes the gaps sidecar.
+
+    The file is a stream of the output policy (:class:`rtstage.files.policy.StreamOutput`),
+    as the live engine's tap (:mod:`rtstage.live.tap`): written under a hidden
+    temporary name while the run lasts, sealed onto ``path`` by :meth:`close`
+    (or at once, with one warning line, when a write fails), never removed.
+    """
 
     def __init__(self, path, ctl, ring, samplerate, bits, info):
         import soundfile as sf
+
+        from ..files.policy import open_stream
 
         self.path = path
         self.ctl = ctl
@@ -221,14 +229,19 @@ class _TapThread:
         self.gaps = []
         self.frames = 0
         subtype = "PCM_16" if ring.dtype == np.int16 else "PCM_24"
+        self.stream = open_stream(path, "tap")
         try:
-            self._file = sf.SoundFile(path, "w", int(samplerate), ring.shape[1], subtype, format="WAV")
+            self._file = sf.SoundFile(self.stream.tmp, "w", int(samplerate), ring.shape[1], subtype, format="WAV")
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            self.stream.discard()
             raise RtstageError(f"cannot open tap file {path}: {exc}") from None
         self._chunk = np.zeros((8192, ring.shape[1]), dtype=ring.dtype)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="rtstage-net-tap", daemon=True)
         self.error = None
+        self._reason = None
+        self.frames_kept = None
+        self.stream.finalize = self._finish_file
 
     def start(self):
         self._thread.start()
@@ -248,18 +261,54 @@ class _TapThread:
                 self._drain()
             self._drain()
         except Exception as exc:
-            self.error = exc
+            try:
+                self._cut_short(exc)  # sealed (and said) before the error shows
+            finally:
+                self.error = exc
+
+    def _cut_short(self, exc):
+        """After a write error (on the tap thread): seal what was written, with one warning line."""
+        import soundfile as sf
+
+        from ..files.policy import failure_reason
+
+        self._reason = failure_reason(self.path, self.stream.tmp, exc)
+        try:
+            self._file.close()
+        except Exception:  # the header could not be finished; the words are still there
+            pass
+        try:
+            self.frames_kept = int(sf.info(self.stream.tmp).frames)
+        except Exception:
+            self.frames_kept = int(self.frames)
+        try:
+            self.stream.seal(cut_short=f"{self._reason}; the tap stopped after {self.frames_kept} frames, "
+                             "the run goes on")
+        except RtstageError as err:
+            self._reason = f"{self._reason}; {err}"
+
+    def _finish_file(self):
+        """Stop the thread and close the sound file (its header finalized); called before sealing."""
+        self._stop.set()
+        if self._thread.is_alive():
+            self._thread.join()
+        self._file.close()
 
     def close(self):
-        self._stop.set()
-        self._thread.join()
-        self._file.close()
+        from ..files.policy import WriteFailed, write_whole_file
+
+        self._finish_file()
         summary = {"path": self.path, "frames": int(self.frames), "dropped_frames": int(self.ctl[C_TAP_DROPPED]),
                    "gaps": list(self.gaps)}
-        with open(self.path + ".gaps.json", "w") as f:
-            json.dump({**summary, **self.info}, f, indent=1)
+        self.stream.seal()
+        try:
+            write_whole_file(self.path + ".gaps.json", json.dumps({**summary, **self.info}, indent=1))
+        except WriteFailed:
+            if self.error is None:
+                raise
         if self.error is not None:
-            raise RtstageError(f"tap file {self.path}: write failed: {self.error}")
+            raise WriteFailed(f"tap file {self.path}: write failed: {self._reason}; the {self.frames_kept} frames "
+                              "written before are kept in it")
         return summary
 
 

@@ -44,6 +44,17 @@ Retention
 segments of the same start) once more than N exist, right after a new one
 is opened.
 
+Files
+-----
+Every segment is a stream of the output policy
+(:class:`rtstage.files.policy.StreamOutput`): written under a hidden
+``.rtstage-*.part`` name beside it, and sealed onto its name (fsync, rename,
+fsync of the folder) when the next segment starts or the run stops, so a
+segment never appears half-written; its sidecar is then written whole.  A
+write error (a full disk, a file-size limit) seals the part of the segment
+already written at once, with one warning line.  Retention counts the
+segment being written among the ``keep`` newest.
+
 Real-time
 ---------
 All of it runs on the tap thread (and, for the log, the control housekeeping
@@ -113,25 +124,24 @@ def segment_frames_for(samplerate, channels, bytes_per_sample, rotate_s=None, ro
 
 
 def _write_json_atomic(path, obj):
-    """Write a sidecar whole or not at all: a hidden temporary file in the same folder, renamed onto ``path``."""
-    from ..files.policy import TEMP_PREFIX
+    """Write a sidecar whole or not at all (the output policy's :func:`~rtstage.files.policy.write_whole_file`)."""
+    from ..files.policy import write_whole_file
 
-    folder, name = os.path.split(path)
-    tmp = os.path.join(folder, f"{TEMP_PREFIX}{name}.tmp")
-    with open(tmp, "w") as f:
-        json.dump(obj, f, indent=1)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    write_whole_file(path, json.dumps(obj, indent=1))
 
 
-def _retain(path, keep, extra_suffixes=(".json",)):
-    """Remove the oldest segments of ``path`` beyond ``keep``; returns the start frames removed."""
+def _retain(path, keep, extra_suffixes=(".json",), writing=1):
+    """Remove the oldest segments of ``path`` beyond ``keep``; returns the start frames removed.
+
+    ``writing`` segments are being written (not yet under their names, so not
+    listed): they count among the ``keep`` newest.
+    """
     if keep is None:
         return []
     segments = list_segments(path)
+    excess = len(segments) - max(0, int(keep) - int(writing))
     removed = []
-    for (_, start), name in segments[:-keep] if len(segments) > keep else []:
+    for (_, start), name in segments[:max(0, excess)]:
         for victim in (name, *(name + s for s in extra_suffixes)):
             try:
                 os.unlink(victim)
@@ -139,7 +149,6 @@ def _retain(path, keep, extra_suffixes=(".json",)):
                 pass
         removed.append(start)
     return removed
-
 
 
 # ----------------------------------------------------------------------------- kernel state at a boundary
@@ -382,7 +391,9 @@ class RotatingTapWriter:
         ext = os.path.splitext(path)[1].lower().lstrip(".")
         self.format = {"wav": "WAV", "flac": "FLAC", "aiff": "AIFF", "aif": "AIFF", "w64": "W64"}.get(ext, "WAV")
         self._file = None
+        self._stream = None
         self._seg = None
+        self._reason = None
         self._chunk = np.zeros((CHUNK_FRAMES, block.channels), dtype=block.out_dtype)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="rtstage-tap", daemon=True)
@@ -393,12 +404,17 @@ class RotatingTapWriter:
     def _open_segment(self, start):
         import soundfile as sf
 
+        from ..files.policy import open_stream
+
         name = segment_path(self.path, start, self.run_id)
+        stream = open_stream(name, "tap segment", finalize=self._finish_file)
         try:
-            self._file = sf.SoundFile(name, "w", self.samplerate, self.block.channels, self.subtype,
+            self._file = sf.SoundFile(stream.tmp, "w", self.samplerate, self.block.channels, self.subtype,
                                       format=self.format)
         except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            stream.discard()
             raise RtstageError(f"cannot open tap segment {name}: {exc}") from None
+        self._stream = stream
         self._seg = {"path": name, "start_frame": int(start), "frames": 0,
                      "dropped_before": int(self.block.ctl[self._dropped_index()]), "gaps": []}
         self.segments.append(name)
@@ -409,17 +425,37 @@ class RotatingTapWriter:
 
         return C_RING_DROPPED
 
-    def _close_segment(self):
-        if self._file is None:
+    def _finish_file(self):
+        """Stop the thread and close the segment being written (its header finalized); a stream's ``finalize``."""
+        self._stop.set()
+        if self._thread.is_alive() and self._thread is not threading.current_thread():
+            self._thread.join()
+        if self._file is not None:
+            self._file.close()
+
+    def _close_segment(self, cut_short=None):
+        """Close the segment being written, seal it onto its name and write its sidecar."""
+        if self._stream is None:
             return
-        self._file.close()
-        seg = self._seg
+        stream, seg = self._stream, self._seg
+        self._stream = None
+        try:
+            self._file.close()
+        except Exception:  # after a write error libsndfile may not finish the header; the words are there
+            if cut_short is None:
+                raise
+        self._file = None
+        if cut_short is not None:
+            from ..live.tap import _frames_in
+
+            seg["frames"] = _frames_in(stream.tmp, seg["frames"])
+            cut_short = f"{cut_short}; the tap stopped after {seg['frames']} frames of this segment, the run goes on"
+        stream.seal(cut_short=cut_short)
         dropped_total = int(self.block.ctl[self._dropped_index()])
         dropped = dropped_total - seg.pop("dropped_before")
         sidecar = {**seg, "end_frame": seg["start_frame"] + seg["frames"], "dropped_frames": dropped,
                    "samplerate": self.samplerate, **self.info, "state_at_start": self._state_at(seg, dropped_total)}
         _write_json_atomic(seg["path"] + ".json", sidecar)
-        self._file = None
 
     def _state_at(self, seg, dropped_total):
         """``state_at_start`` of a closing segment (see the module notes)."""
@@ -433,12 +469,12 @@ class RotatingTapWriter:
         return segment_state(self.snapshots.get(start), start, log)
 
     def _rotate(self, start):
-        self._close_segment()
+        self._close_segment()  # sealed onto its name as the next one starts
         self._open_segment(start)
         removed = _retain(self.path, self.keep)
         if removed:
             self.removed.extend(removed)
-            self.segments = [s for s in self.segments if os.path.exists(s)]
+            self.segments = [s for s in self.segments if os.path.exists(s) or s == self._seg["path"]]
         if self.on_segment is not None:
             self.on_segment(start)
         if removed and self.on_retain is not None:
@@ -487,7 +523,20 @@ class RotatingTapWriter:
                 self._drain()
             self._drain()
         except Exception as exc:  # reported by close(); the audio side never waits for this thread
-            self.error = exc
+            try:
+                self._cut_short(exc)  # sealed (and said) before the error shows
+            finally:
+                self.error = exc
+
+    def _cut_short(self, exc):
+        """After a write error (on the tap thread): seal the part of the segment written, with one warning line."""
+        from ..files.policy import failure_reason
+
+        self._reason = failure_reason(self.path, self._stream.tmp if self._stream is not None else None, exc)
+        try:
+            self._close_segment(cut_short=self._reason)
+        except Exception as err:  # the sidecar could not be written either
+            self._reason = f"{self._reason}; {err}"
 
     def mark_gap(self, engine_frame, gap_s, reason):
         """Record a discontinuity at the current end of the tap (while the stream is stopped)."""
@@ -505,7 +554,7 @@ class RotatingTapWriter:
             self._thread.join()
         if self.snapshots is not None:
             self.snapshots.stop()
-        if self._seg is not None:
+        if self._seg is not None and self._stream is not None:
             # gaps recorded by the engine land in the segment that holds their tap frame
             for gap in self.gaps:
                 if gap["tap_frame"] >= self._seg["start_frame"]:
@@ -522,7 +571,10 @@ class RotatingTapWriter:
             "removed_segments": len(self.removed),
         }
         if self.error is not None:
-            raise RtstageError(f"tap {self.path}: write failed: {self.error}")
+            from ..files.policy import WriteFailed
+
+            raise WriteFailed(f"tap {self.path}: write failed: {self._reason or self.error}; the segments written "
+                              "before are kept")
         return summary
 
 
@@ -578,17 +630,22 @@ class RotatingAutomationLog:
             self._open(0)
 
     def _open(self, start):
+        from ..files.policy import LineStream, open_stream
+
         if self._file is not None:
-            self._file.close()
+            self._file.close()  # sealed onto its name as the next one starts
+            self._file = None
         name = segment_path(self.path, start, self.run_id)
+        stream = open_stream(name, "automation log segment")
         try:
-            self._file = open(name, "w", encoding="utf-8")
+            self._file = LineStream(stream)
         except OSError as exc:
+            stream.discard()
             raise RtstageError(f"cannot write automation log {name}: {exc.strerror}") from None
+        stream.finalize = self._file.close_file
         self._start = int(start)
-        self._file.write(json.dumps({"rtstage_automation": self.format_version, "samplerate": self.samplerate}) + "\n")
-        self._file.write(json.dumps({"at_frame": self._start, "values": self.values}, separators=(",", ":")) + "\n")
-        self._file.flush()
+        self._file.write_line(json.dumps({"rtstage_automation": self.format_version, "samplerate": self.samplerate}))
+        self._file.write_line(json.dumps({"at_frame": self._start, "values": self.values}, separators=(",", ":")))
         self.segments.append(name)
         _retain(self.path, self.keep, extra_suffixes=())
 
@@ -608,8 +665,7 @@ class RotatingAutomationLog:
                 return
             if self._segment_start(frame) > self._start:
                 self._open(self._segment_start(frame))
-            self._file.write(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")) + "\n")
-            self._file.flush()
+            self._file.write_line(json.dumps({"at_frame": int(frame), "values": values}, separators=(",", ":")))
             self.values.update(values)
             self._history.append((int(frame), dict(values)))
             if len(self._history) > self.HISTORY:
@@ -633,7 +689,7 @@ class RotatingAutomationLog:
             return [(f, dict(v)) for f, v in self._history if f >= frame]
 
     def close(self):
-        """Flush and close the current segment."""
+        """Close the current segment and seal it onto its name."""
         with self._lock:
             if self._file is not None:
                 self._file.close()
