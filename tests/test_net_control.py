@@ -99,3 +99,47 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
     # RFC 2974 §3: an announcement at the start and a deletion (T bit) at the stop, both carrying the SDP.
     assert [(p[0] >> 2) & 1 for p in announcements] == [0, 1]
     assert f"m=audio {sink.port} RTP/AVP 96".encode() in announcements[0]
+
+
+def test_programme_op_closes_the_loudness_programme_and_starts_the_next(tmp_path):
+    # A 997 Hz sine at -20 dBFS in both channels of a stereo programme reads -20.0 LUFS: EBU Tech 3341 test 1
+    # (1 kHz at -23 dBFS reads -23.0 LUFS +/- 0.1 LU; BS.1770's -0.691 offset cancels K-weighting's gain near
+    # 1 kHz).  The closed programme must read that, and the new one must carry the label sent.
+    source = "tone:freq_hz=997,level_dbfs=-20"
+    err = str(tmp_path / "err.txt")
+    with open(err, "w") as f:
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", source, "--samplerate", str(SR),
+             "--channels", "2", "--bits", "16", "--seed", "5", "--tap", str(tmp_path / "tap.wav"),
+             "--control-port", str(_free_port()), "--quiet"],
+            cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
+    try:
+        port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
+        with ControlClient(LOOPBACK, port, timeout_s=10) as client:
+            assert client.request({"op": "programme", "label": 7})["ok"] is False  # a label is text
+            deadline = time.monotonic() + 60
+            while True:  # at least 3 s of the first programme, so that gated blocks exist
+                loud = client.request({"op": "meters"})["meters"].get("loudness") or {}
+                if (loud.get("duration_s") or 0) >= 3.0:
+                    break
+                assert time.monotonic() < deadline, loud
+                time.sleep(0.2)
+            reply = client.request({"op": "programme", "label": "bulletin 13:00"})
+            assert reply["ok"] and reply["label"] == "bulletin 13:00"
+            while True:
+                loud = client.request({"op": "meters"})["meters"]["loudness"]
+                if loud["programme"] == 2:
+                    break
+                assert time.monotonic() < deadline, loud
+                time.sleep(0.1)
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=30) == 0, open(err).read()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert loud["programme_label"] == "bulletin 13:00"
+    first = loud["programmes"][0]
+    assert first["duration_s"] >= 3.0 and first["programme"] == 1
+    assert abs(first["integrated_lufs"] - (-20.0)) <= 0.1
+    assert loud["duration_s"] < first["duration_s"] + 1.0  # the new programme started from nothing

@@ -8,14 +8,16 @@ so that the figures mean something on a shared, noisy machine:
    here with ``gcc -O3``, on the same input (2 channels, TPDF, 16 bits,
    ``wannamaker-f9``).  Both outputs are compared word for word before any
    time is reported; a benchmark of two different computations is worthless.
-   Goal: the kernel at least 2x the plain C throughput.
+   Goal: the kernel at least 4x the plain C ``-O3`` throughput and 2.5x the
+   ``-march=native`` build.
 2. **End-to-end render.**  ``rtstage render`` of a 10-minute stereo 48 kHz
    24-bit WAV to 16 bits, as a subprocess and as an in-process
    :func:`rtstage.render.render_file` call, against pure I/O with soundfile
    (read the same input, write a 16-bit WAV of the same size).
-   Goal: the subprocess at most 1.3x the pure I/O time.
+   Goal: the subprocess at most 1.5x the pure I/O time; ``rtstage pipe`` at
+   least 0.9x the render's throughput.
 3. **Warm start.**  Wall time of a fresh ``rtstage render`` process on a
-   1-second file once the numba cache is warm.  Goal: at most 1 s.
+   1-second file once the numba cache is warm.  Goal: at most 0.5 s.
 
 Every time is the best of ``--reps`` repetitions after a warm-up run; the
 spread (slowest / best - 1) is printed beside it as a measure of the noise.

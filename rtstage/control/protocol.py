@@ -27,10 +27,12 @@ from ..errors import RtstageError
 from ..files.tomlread import load_toml, TomlFileMissing
 from . import PROTOCOL_VERSION
 
-OPS = ("hello", "auth", "list", "get", "set", "status", "meters", "subscribe", "unsubscribe",
+OPS = ("hello", "auth", "list", "get", "set", "status", "meters", "subscribe", "unsubscribe", "programme",
        "presets", "preset_load", "preset_save", "learn", "learn_cancel", "bye")
 """Every operation the server knows, in documentation order."""
 
+MAX_PROGRAMME_LABEL_CHARS = 200
+"""Longest loudness programme label the ``programme`` op takes (the meter keeps as many)."""
 MAX_ID_CHARS = 64
 MAX_SUBSCRIPTIONS = 4
 """Meter subscriptions one client may hold at once."""
@@ -436,6 +438,14 @@ class Dispatcher:
             raise RequestError(f"no subscription {sub!r} on this connection")
         del session.subscriptions[sub]
         return ok_reply(rid, cancelled=1)
+
+    def _op_programme(self, req, rid, session):
+        _fields(req, ("label",))
+        label = req.get("label")
+        if label is not None and (not isinstance(label, str) or len(label) > MAX_PROGRAMME_LABEL_CHARS):
+            raise RequestError(f"label must be a string of at most {MAX_PROGRAMME_LABEL_CHARS} characters")
+        self.controller.target.new_programme(label)
+        return ok_reply(rid, label=label)
 
     def _op_presets(self, req, rid, session):
         _fields(req, ())

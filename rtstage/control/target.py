@@ -117,6 +117,20 @@ class ControlTarget:
         self.note_caution(values, ticket)
         return ticket, result
 
+    def new_programme(self, label=None):
+        """Close the loudness programme and start the next one (``label`` names it) at the next metered chunk.
+
+        The closed programme's readings stay in the meters' ``loudness.programmes``.
+        """
+        starter = getattr(self.core_engine(), "new_programme", None)
+        if starter is None:
+            raise RtstageError("this engine has no loudness meter to start a programme on")
+        starter(label)
+
+    def core_engine(self):
+        """The engine object that runs the meters (the live or deviceless engine), or None."""
+        return getattr(self, "engine", None)
+
     def check(self, values):
         """Raise :class:`RtstageError` for valid changes this target cannot take (a word that does not fit)."""
         bits = values.get("bits")

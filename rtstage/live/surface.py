@@ -10,6 +10,7 @@ sample index (:func:`rtstage.live.shared.applied`).
 
 import time
 
+from ..errors import RtstageError
 from ..log import log
 from . import shared as S
 
@@ -40,6 +41,18 @@ class ControlSurface:
         seq = self.engine.apply(settings)
         self.settings = self.engine.settings
         return seq
+
+    def new_programme(self, label=None):
+        """Start a new loudness programme (BS.1770 integrated loudness and EBU Tech 3342 range restart).
+
+        The meter thread closes the current programme at its next chunk; the
+        closed readings stay in the meters' ``loudness.programmes``.
+        """
+        live_meters = getattr(self, "live_meters", None)
+        thread = live_meters.thread if live_meters is not None else getattr(self, "meter_thread", None)
+        if thread is None:
+            raise RtstageError("the meters are off (no loudness programme to start)")
+        thread.new_programme(label)
 
     def last_applied(self):
         """(sequence number, sample index) of the settings the callback took last."""
