@@ -13,7 +13,6 @@ import os
 import re
 import resource
 import signal
-import socket
 import stat
 import subprocess
 import sys
@@ -27,6 +26,8 @@ import soundfile as sf
 from numpy.testing import assert_array_equal
 
 from rtstage.files.policy import LineStream, OutputPlan, open_stream, seal_open_streams
+
+from procs import free_port, wait_for
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SR = 48000
@@ -365,21 +366,6 @@ def test_a_segment_is_sealed_when_the_next_one_starts(tmp_path):
 
 # -- integration: rtstage run --device none --------------------------------------------------------------------
 
-def _free_port():
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def _wait_for(path, pattern, proc, timeout_s=600):
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        m = re.search(pattern, open(path).read())
-        if m:
-            return m
-        assert proc.poll() is None, open(path).read()
-        time.sleep(0.05)
-    raise AssertionError(open(path).read())
 
 
 def test_deviceless_run_writes_tap_and_log_as_streams_sealed_on_sigterm(tmp_path):
@@ -392,12 +378,12 @@ def test_deviceless_run_writes_tap_and_log_as_streams_sealed_on_sigterm(tmp_path
         proc = subprocess.Popen(
             [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", "tone:freq_hz=997,level_dbfs=-6",
              "--samplerate", str(SR), "--channels", "2", "--bits", "16", "--seed", "4", "--tap", tap,
-             "--automation-log", log_path, "--status-file", st, "--control-port", str(_free_port()), "--quiet",
+             "--automation-log", log_path, "--status-file", st, "--control-port", str(free_port()), "--quiet",
              "--duration", "120"],
             cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
     try:
-        port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
-        _wait_for(err, r"running without a device", proc)
+        port = int(wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
+        wait_for(err, r"running without a device", proc)
         time.sleep(0.5)
         # While it runs: neither final name exists; the tap and the log are hidden temporary files beside them.
         assert sorted(os.listdir(out)) == temps(out) and len(temps(out)) == 2
@@ -441,7 +427,7 @@ def test_live_run_seals_rotated_segments_as_it_goes(jack_server, tmp_path):
              "--status-file", st, "--control-port", "0", "--quiet"],
             env=jack_server.client_env(), cwd=ROOT, stderr=f, stdout=subprocess.DEVNULL)
     try:
-        _wait_for(err, r"rtstage: running:", proc, timeout_s=90)
+        wait_for(err, r"rtstage: running:", proc, timeout_s=90)
         deadline = time.monotonic() + 60
         while len(list_segments(tap)) < 2:
             assert time.monotonic() < deadline and proc.poll() is None, open(err).read()

@@ -38,14 +38,11 @@ from test_control_fuzz import MAX_LINE_BYTES, N_CLIENTS, N_LINES, fuzz_client
 from test_control_fuzz import SETTINGS as FUZZ_SETTINGS
 from test_midi_jack import Desk, wait_until
 
+from procs import free_port
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SR = 48000
 
-
-def _free_port():
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 class RunProcess:
@@ -92,7 +89,7 @@ def _rerender(settings, source, nframes, log_path, chunk=4096):
 def test_fuzz_against_live_engine_keeps_server_up_and_tap_identical(jack_server, tmp_path):
     source = "noise:level_dbfs=-20,seed=3"
     s = FUZZ_SETTINGS
-    port = _free_port()
+    port = free_port()
     tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json", "err.txt"))
     run = RunProcess(jack_server, [
         "--source", source, "--bits", str(s.bits), "--dither", s.dither, "--shaper", s.shaper, "--seed", str(s.seed),
@@ -144,7 +141,7 @@ def test_midi_and_socket_changes_in_tap_at_logged_frames_and_rerender(jack_serve
             monkeypatch.setenv(key, value)
     source = "tone:freq_hz=997,level_dbfs=-20"  # AES17 test frequency
     settings = EngineSettings(bits=16, dither="tpdf", shaper="flat", seed=4242)
-    port = _free_port()
+    port = free_port()
     tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "auto.jsonl", "status.json", "err.txt"))
     bits_cc = Control("bits", 1, 102)  # the default map's word-length control
     desk = Desk()

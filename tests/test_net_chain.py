@@ -8,12 +8,10 @@ render`` to 16 bits of A's words, bit for bit.  Every packet goes to 127.0.0.1.
 
 import json
 import os
-import re
 import socket
 import subprocess
 import sys
 import threading
-import time
 
 import numpy as np
 import soundfile as sf
@@ -22,6 +20,8 @@ from numpy.testing import assert_array_equal
 from rtstage.live.sources import generate
 
 from test_net_rtp import LOOPBACK, PacketCollector, read_rfc_packets, read_with_rtp_package
+
+from procs import wait_for
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SR = 48000
@@ -63,17 +63,6 @@ class Relay:
         return self.packets
 
 
-def _wait_for(path, pattern, proc, timeout_s=600):
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        text = open(path).read()
-        m = re.search(pattern, text)
-        if m:
-            return m
-        assert proc.poll() is None, text
-        time.sleep(0.05)
-    raise AssertionError(f"no {pattern!r} in: {open(path).read()}")
-
 
 def test_chain_24_bit_feed_to_16_bit_link(tmp_path):
     nframes = 14400  # 0.3 s, 300 packets of 1 ms
@@ -92,7 +81,7 @@ def test_chain_24_bit_feed_to_16_bit_link(tmp_path):
             cwd=ROOT, env=ENV, stderr=err, stdout=subprocess.DEVNULL)
     relay = None
     try:
-        port_b = int(_wait_for(err_b, r"receiving RTP L24 on 127\.0\.0\.1:(\d+)", proc_b).group(1))
+        port_b = int(wait_for(err_b, r"receiving RTP L24 on 127\.0\.0\.1:(\d+)", proc_b).group(1))
         relay = Relay(port_b)
         sdp_a = tmp_path / "a.sdp"
         result_a = subprocess.run(

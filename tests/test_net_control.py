@@ -6,9 +6,7 @@ Every packet goes to 127.0.0.1.
 
 import json
 import os
-import re
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -24,25 +22,12 @@ from rtstage.live.sources import generate
 
 from test_net_rtp import LOOPBACK, PacketCollector, read_rfc_packets
 
+from procs import free_port, wait_for
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SR = 48000
 
 
-def _free_port():
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind((LOOPBACK, 0))
-        return s.getsockname()[1]
-
-
-def _wait_for(path, pattern, proc, timeout_s=600):
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        m = re.search(pattern, open(path).read())
-        if m:
-            return m
-        assert proc.poll() is None, open(path).read()
-        time.sleep(0.05)
-    raise AssertionError(open(path).read())
 
 
 def test_control_socket_drives_the_deviceless_engine(tmp_path):
@@ -56,11 +41,11 @@ def test_control_socket_drives_the_deviceless_engine(tmp_path):
             [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", source, "--samplerate", str(SR),
              "--channels", "2", "--bits", "16", "--dither", "tpdf", "--seed", "33", "--rtp-out",
              f"{LOOPBACK}:{sink.port}", "--rtp-ptime-ms", "4", "--tap", tap, "--status-file", st,
-             "--automation-log", log_path, "--control-port", str(_free_port()), "--quiet",
+             "--automation-log", log_path, "--control-port", str(free_port()), "--quiet",
              "--rtp-sap", f"{LOOPBACK}:{sap_sink.port}"],
             cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
     try:
-        port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
+        port = int(wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
         time.sleep(0.3)
         with ControlClient(LOOPBACK, port, timeout_s=10) as client:
             reply = client.request({"op": "set", "values": {"gain_db": -6.0}})
@@ -111,10 +96,10 @@ def test_programme_op_closes_the_loudness_programme_and_starts_the_next(tmp_path
         proc = subprocess.Popen(
             [sys.executable, "-m", "rtstage", "run", "--device", "none", "--source", source, "--samplerate", str(SR),
              "--channels", "2", "--bits", "16", "--seed", "5", "--tap", str(tmp_path / "tap.wav"),
-             "--control-port", str(_free_port()), "--quiet"],
+             "--control-port", str(free_port()), "--quiet"],
             cwd=ROOT, env={**os.environ, "PYTHONPATH": ROOT}, stderr=f, stdout=subprocess.DEVNULL)
     try:
-        port = int(_wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
+        port = int(wait_for(err, r"control: listening on 127\.0\.0\.1:(\d+)", proc).group(1))
         with ControlClient(LOOPBACK, port, timeout_s=10) as client:
             assert client.request({"op": "programme", "label": 7})["ok"] is False  # a label is text
             deadline = time.monotonic() + 60
