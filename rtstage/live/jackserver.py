@@ -160,9 +160,15 @@ class JackDummyServer:
         default-configured realtime threads (jackd's own default is 10).
     ready_timeout_s : float
         How long :meth:`start` waits for the server to accept clients.
+    cpus : set of int or None
+        Run the server on these CPUs only (``sched_setaffinity``); None leaves
+        it free.  Tests that compare clients cycle by cycle put the server and
+        every client on one CPU, so that a stall of that CPU (a hypervisor
+        descheduling it, for instance) reaches all of them at once.
     """
 
-    def __init__(self, samplerate=48000, period_frames=64, channels=2, name=None, realtime=None, priority=75, ready_timeout_s=15.0):
+    def __init__(self, samplerate=48000, period_frames=64, channels=2, name=None, realtime=None, priority=75, ready_timeout_s=15.0,
+                 cpus=None):
         self.samplerate = int(samplerate)
         self.period_frames = int(period_frames)
         self.channels = int(channels)
@@ -176,6 +182,7 @@ class JackDummyServer:
         self.realtime = bool(realtime)
         self.priority = int(priority)
         self.ready_timeout_s = ready_timeout_s
+        self.cpus = None if cpus is None else set(cpus)
         self.process = None
         self.log_path = os.path.join(tempfile.gettempdir(), f"{self.name}.jackd.log")
 
@@ -204,7 +211,7 @@ class JackDummyServer:
         log = open(self.log_path, "ab")
         try:
             self.process = subprocess.Popen(self.command(), stdin=subprocess.DEVNULL, stdout=log, stderr=log, env=env,
-                                            start_new_session=True)
+                                            start_new_session=True, preexec_fn=self.pin if self.cpus else None)
         finally:
             log.close()
         deadline = time.monotonic() + self.ready_timeout_s
@@ -216,6 +223,11 @@ class JackDummyServer:
             time.sleep(0.1)
         self.stop()
         raise RtstageError(f"jackd did not accept clients within {self.ready_timeout_s} s (log: {self.log_path})")
+
+    def pin(self):
+        """Restrict the calling process to this server's CPUs (a ``preexec_fn`` for its clients); no-op when free."""
+        if self.cpus:
+            os.sched_setaffinity(0, self.cpus)
 
     @staticmethod
     def _accepts_clients(env):
