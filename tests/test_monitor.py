@@ -247,11 +247,12 @@ def test_live_monitor_switching_over_the_socket_matches_the_rerender(jack_server
     from numpy.testing import assert_array_equal
 
     from rtstage.control.client import ControlClient
-    from test_live_control import RunProcess, _free_port, _rerender
+    from procs import free_port
+    from test_live_control import RunProcess, _rerender
 
     source = "tone:freq_hz=997,level_dbfs=-60"  # a quiet tone: the error monitor is audible next to it
     tap, log_path, st, err = (str(tmp_path / n) for n in ("tap.wav", "changes.jsonl", "status.json", "run.err"))
-    port = _free_port()
+    port = free_port()
     run = RunProcess(jack_server, [
         "--source", source, "--bits", "2", "--dither", "tpdf", "--shaper", "flat", "--seed", "99",
         "--blocksize", "128", "--tap", tap, "--status-file", st, "--automation-log", log_path,
