@@ -1,7 +1,6 @@
-"""Helpers for tests that start ``rtstage`` processes: a free loopback port, waiting for a log line, stopping."""
+"""Helpers for tests that start ``rtstage`` processes: a free loopback port and waiting for a log line."""
 
 import re
-import signal
 import socket
 import time
 
@@ -27,13 +26,3 @@ def wait_for(path, pattern, proc, timeout_s=600):
         time.sleep(0.05)
     raise AssertionError(f"no {pattern!r} in: {open(path).read()}")
 
-
-def stop(proc, sig=signal.SIGTERM, timeout_s=30):
-    """Send ``sig`` and wait (kill after ``timeout_s``); returns the exit status."""
-    if proc.poll() is None:
-        proc.send_signal(sig)
-        try:
-            return proc.wait(timeout=timeout_s)
-        except Exception:
-            proc.kill()
-    return proc.wait()
