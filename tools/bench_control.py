@@ -162,7 +162,7 @@ def bench_midi(trials, blocksize, samplerate):
 class _LiveStack:
     """LiveEngine + LiveTarget + Controller + ControlServer (port 0) on the JACK server named in the environment."""
 
-    def __init__(self, blocksize, samplerate):
+    def __init__(self, blocksize, samplerate, trials):
         from rtstage.control.live_target import LiveTarget
         from rtstage.control.protocol import Controller
         from rtstage.control.server import ControlServer
@@ -171,7 +171,7 @@ class _LiveStack:
         settings = EngineSettings(bits=16, dither="tpdf", seed=1)
         self.engine = LiveEngine(settings, samplerate=samplerate, blocksize=blocksize, source="tone:level_dbfs=-30")
         self.engine.prepare()
-        self.target = LiveTarget(self.engine).start()
+        self.target = LiveTarget(self.engine, applied_kept=trials).start()  # every trial's change, for the latencies
         self.controller = Controller(self.target)
         self.server = ControlServer(self.controller, port=0, rate_hz=1e6, burst=1e6, logger=lambda m: None).start()
         self._thread = threading.Thread(target=self.engine.run, kwargs={"install_signals": False}, daemon=True)
@@ -202,7 +202,7 @@ def bench_live_tcp(trials, blocksize, samplerate):
     with JackDummyServer(samplerate=samplerate, period_frames=64) as server:
         env = server.client_env()
         os.environ.update({k: v for k, v in env.items() if k.startswith("JACK_")})
-        with _LiveStack(blocksize, samplerate) as stack:
+        with _LiveStack(blocksize, samplerate, trials) as stack:
             result = subprocess.run([sys.executable, "-c", _TCP_CLIENT, str(stack.server.port), str(trials),
                                      str(period_s)], stdout=subprocess.PIPE, check=True, timeout=600)
             send_times = [float(v) for v in result.stdout.split()]
@@ -223,7 +223,7 @@ def bench_live_midi(trials, blocksize, samplerate):
     with JackDummyServer(samplerate=samplerate, period_frames=64) as server:
         env = server.client_env()
         os.environ.update({k: v for k, v in env.items() if k.startswith("JACK_")})
-        with _LiveStack(blocksize, samplerate) as stack:
+        with _LiveStack(blocksize, samplerate, trials) as stack:
             probe = subprocess.Popen([sys.executable, "-c", _MIDI_CLIENT, str(trials), str(period_s)], env=env,
                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
             try:

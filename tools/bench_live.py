@@ -162,7 +162,7 @@ def run_rtstage(native, seconds, load, workdir):
         "callback_max_us": final["port"]["callback_max_us"],
         "callback_max_fraction_of_period": final["port"]["callback_max_fraction_of_block"],
         "tap_dropped_frames": final["tap_dropped_frames"],
-        "changes_applied": len(target.applied),
+        "changes_applied": target.applied_count,
         "realtime": {"audio_thread": final["realtime"]["audio_thread"],
                      "memory_locked": final["realtime"]["stream_process"]["memory_locked"]},
     }

@@ -46,6 +46,7 @@ that raises ``error_gain_db`` above 0 dB logs the hearing-safety caution
 ``auto_muted_frames``.
 """
 
+import collections
 import threading
 import time
 
@@ -59,8 +60,14 @@ POLL_S = 0.0005
 """How often the housekeeping thread looks for the applied publication while one is in flight."""
 
 
-APPLIED_KEPT = 4096
-"""Applied changes kept in :attr:`LiveTarget.applied` (the automation log has them all)."""
+APPLIED_KEPT = 256
+"""Applied changes kept in :attr:`LiveTarget.applied` by default (the automation log has them all).
+
+Each entry holds the change's values (a few hundred bytes); a run must not grow
+with the changes it applies (the soak's goal, ``tools/soak.py``: at most 1 MB
+over 30 minutes at 10 changes a second, about 55 bytes a change), so only the
+latest ones are kept, in a ring that is full after the first few hundred.
+"""
 
 
 def _dbfs_none(channels):
@@ -83,6 +90,8 @@ class LiveTarget(ControlTarget, Startable):
         Default wait of :meth:`wait` for the block that applies a change.
     poll_s : float
         Poll interval of the housekeeping thread while a publication is in flight.
+    applied_kept : int
+        Applied changes kept in :attr:`applied` (the latest; :attr:`applied_count` counts them all).
 
     Notes
     -----
@@ -92,18 +101,19 @@ class LiveTarget(ControlTarget, Startable):
     stays open for its owner to close).
     """
 
-    def __init__(self, engine, automation_log=None, apply_timeout_s=1.0, poll_s=POLL_S):
+    def __init__(self, engine, automation_log=None, apply_timeout_s=1.0, poll_s=POLL_S, applied_kept=APPLIED_KEPT):
         if getattr(engine, "engine", None) is None:
             raise RtstageError("the live engine must be prepared before it can be controlled")
         self.engine = engine
         self.automation_log = automation_log
         self.apply_timeout_s = float(apply_timeout_s)
         self.poll_s = float(poll_s)
-        self.applied = []
+        self.applied = collections.deque(maxlen=int(applied_kept))
+        """``(frame, values, monotonic_s)`` of the latest ``applied_kept`` applied changes, oldest first;
+        ``monotonic_s`` is when the block that applied it started (from the callback's own clock), or when it was
+        seen applied if that is unknown."""
         self.applied_count = 0
-        """Changes applied since the start (``applied`` keeps the latest :data:`APPLIED_KEPT` to 2x that)."""
-        """``(frame, values, monotonic_s)`` of every applied change; ``monotonic_s`` is when the block that applied it
-        started (from the callback's own clock), or when it was seen applied if that is unknown."""
+        """Changes applied since the start."""
         self.publications = 0
         self._values = params.defaults()
         self._values.update(params.values_from_settings(engine.settings))
@@ -246,10 +256,8 @@ class LiveTarget(ControlTarget, Startable):
     def _record(self, ticket, frame, values, effect_s=None):
         now = time.monotonic() if effect_s is None else effect_s
         if frame is not None:
-            self.applied.append((frame, values, now))
+            self.applied.append((frame, values, now))  # a ring: the oldest entry goes (a long run must not grow)
             self.applied_count += 1
-            if len(self.applied) > 2 * APPLIED_KEPT:  # bounded: a long run must not grow (tools/soak.py)
-                del self.applied[:-APPLIED_KEPT]
             if self.automation_log is not None:
                 self.automation_log.write(frame, values)
         with self._cond:

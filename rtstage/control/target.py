@@ -69,6 +69,11 @@ ERROR_GAIN_CAUTION = (
 """Logged (and returned by :meth:`ControlTarget.caution`) the first time ``error_gain_db`` goes above 0 dB."""
 
 
+TICKETS_KEPT = 512
+"""Tickets whose sample index :meth:`ControlTarget.wait` can still return (the latest; older ones return a later
+change's index or None)."""
+
+
 class ControlTarget:
     """The interface the control layer drives (see the module docstring)."""
 
@@ -163,9 +168,10 @@ class ControlTarget:
         """With ``_cond`` held: the changes up to ``ticket`` took effect at ``frame`` (None: not applied); wakes waiters."""
         for t in range(self._applied_ticket + 1, ticket + 1):
             self._applied_frame[t] = frame
-        if len(self._applied_frame) > 1024:
-            for t in sorted(self._applied_frame)[:-512]:
-                del self._applied_frame[t]
+        # Tickets are recorded in increasing order, so the dict's first keys are the oldest: drop them one by one
+        # and the record stays the same size once full (a long run must not grow with its changes).
+        while len(self._applied_frame) > TICKETS_KEPT:
+            del self._applied_frame[next(iter(self._applied_frame))]
         self._applied_ticket = max(self._applied_ticket, ticket)
         self._cond.notify_all()
 

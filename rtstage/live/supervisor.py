@@ -57,7 +57,7 @@ from .metering import LiveMeters, meter_snapshot
 from .realtime import start_notice
 from .sources import check_source, parse_source
 from .status import FlagWindows, live_status, read_flags
-from .surface import ControlSurface
+from .surface import ControlSurface, applied_log
 from .tap import TapWriter
 from .timing import check_port
 
@@ -158,7 +158,7 @@ class LiveEngine(ControlSurface):
         self.tap = None
         self.restarts = 0
         self.gaps = []
-        self.applied_log = []
+        self.applied_log = applied_log()
         self.cpu_load = 0.0
         self.cpu_load_max = 0.0
         self.state = "new"

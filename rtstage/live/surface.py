@@ -8,6 +8,7 @@ block; the callback takes them at its next block boundary and records the
 sample index (:func:`rtstage.live.shared.applied`).
 """
 
+import collections
 import time
 
 from ..errors import RtstageError
@@ -15,11 +16,24 @@ from ..log import log
 from . import shared as S
 
 
+APPLIED_LOG_KEPT = 100
+"""Entries of ``applied_log`` (the status's ``settings_applied``): the latest settings taken by the callback.
+
+The automation log keeps every change; this record is bounded so that a long run does not grow with its changes
+(``tools/soak.py``: at most 1 MB over 30 minutes), and it is copied into every status.
+"""
+
+
+def applied_log():
+    """An empty ``applied_log``: a ring of ``{"seq", "frame"}`` records, the oldest dropped past :data:`APPLIED_LOG_KEPT`."""
+    return collections.deque(maxlen=APPLIED_LOG_KEPT)
+
+
 class ControlSurface:
     """Mixin of :class:`~rtstage.live.supervisor.LiveEngine` and :class:`~rtstage.net.netengine.NetEngine`.
 
     Needs ``engine``, ``block``, ``settings``, ``samplerate``, ``blocksize``,
-    ``applied_log`` and ``_logged_seq``.
+    ``applied_log`` (from :func:`applied_log`) and ``_logged_seq``.
     """
 
     def _publish_params(self, iparams, fparams):
@@ -81,6 +95,5 @@ class ControlSurface:
         seq, frame = self.last_applied()
         if seq != self._logged_seq and seq != 0:
             self._logged_seq = seq
-            self.applied_log.append({"seq": seq, "frame": frame})
-            del self.applied_log[:-1000]  # bounded for long runs; the automation log keeps every change
+            self.applied_log.append({"seq": seq, "frame": frame})  # a ring (APPLIED_LOG_KEPT)
             log(f"settings #{seq // 2} took effect at sample {frame}")

@@ -46,7 +46,7 @@ from ..errors import RtstageError
 from ..live import shared as S
 from ..live import timing as T
 from ..live.sources import fill_generated
-from ..live.surface import ControlSurface
+from ..live.surface import ControlSurface, applied_log
 from . import _native as N
 from .rtp import RtpOutConfig, open_sender_socket, pack_packet
 
@@ -367,7 +367,7 @@ class NetEngine(ControlSurface):
         self._start_time = None
         self._stop_event = threading.Event()
         self._logged_seq = 0
-        self.applied_log = []
+        self.applied_log = applied_log()
 
     @property
     def clock_name(self):
