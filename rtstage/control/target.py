@@ -46,7 +46,7 @@ The first change that raises ``error_gain_db`` above 0 dB on a target logs
 returns it for that change's ticket, so that a control surface can show it
 (the socket reply's ``caution`` field).
 
-Targets may also offer ``applied`` (a list of ``(frame, values,
+Targets may also offer ``applied`` (a sequence of ``(frame, values,
 monotonic_s)`` of applied changes) for benchmarks and tests.
 """
 
