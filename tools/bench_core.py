@@ -362,10 +362,39 @@ def bench_kernel(seconds, reps, kernel_path=None, before_rev=None):
     KM.process_block(x[:64], np.zeros((64, 2), np.int16), np.empty((0, 2)), 64, *KM.KernelState(2).arrays())
     first_call_s = time.perf_counter() - t0
     result = compare_kernels(kernels, x, BENCH_SHAPER, reps, _c_builds())
+    result["recurrence_alone"] = recurrence_alone(KM, x, reps)
     result["setting"] = f"{BENCH_BITS} bits, {BENCH_DITHER}, {BENCH_SHAPER}, seed {BENCH_SEED}, float64 in, int16 out"
     result["kernel_name"] = kernel_name
     result["first_call_s"] = first_call_s
     return result
+
+
+def recurrence_alone(KM, x, reps):
+    """Throughput of the same kernel with no dither: the feedback recurrence and packing alone.
+
+    The recurrence is serial per channel (the next word needs the last
+    error, and the documented sum ``h_1·e[n-1] + … + h_N·e[n-N]`` puts every
+    tap's addition on that path), so no dithered kernel can run faster than
+    this on the same channels; it bounds the speed-up any kernel can have
+    over the plain C loop.  Its words differ from the dithered ones by
+    design, so nothing is compared.
+    """
+    nframes, nch = x.shape
+    settings = EngineSettings(bits=BENCH_BITS, dither="none", shaper=BENCH_SHAPER, seed=BENCH_SEED,
+                              accept_unsafe=True).resolved()  # fmt: skip
+    st = KM.KernelState(nch)
+    encode_params(settings, BENCH_SAMPLERATE, 16 - BENCH_BITS, st.iparams, st.fparams)
+    y = np.zeros((nframes, nch), dtype=np.int16)
+    no_tap = np.empty((0, nch))
+
+    def run():
+        st.reset(0)
+        KM.process_block(x, y, no_tap, nframes, *st.arrays())
+
+    times = time_best(run, reps)
+    out = summary(times)
+    out["samples_per_s"] = nframes * nch / out["best_s"]
+    return out
 
 
 MATRIX_CHANNELS = (1, 2, 8, 64)
@@ -743,6 +772,11 @@ def print_table(results, out=sys.stdout):
     if kr:
         w(f"1. kernel throughput: {kr['samples']} samples ({kr['frames']} frames x {kr['channels']} ch), {kr['setting']}\n")
         _print_comparison(w, kr, "   ")
+        ra = kr.get("recurrence_alone")
+        c_o3 = next((c for c in kr["c"] if c["for_goal"] and "best_s" in c), None)
+        if ra and c_o3:
+            w(f"   {'bound: same kernel, dither none':34s} {_t(ra)}  {ra['samples_per_s'] / 1e6:7.1f} Msamples/s"
+              f"  -> {c_o3['best_s'] / ra['best_s']:.2f}x the plain C -O3 loop: no dithered kernel can beat this\n")
         w(f"   (kernel first call, compile or cache load: {kr['first_call_s']:.2f} s)\n\n")
     mr = results.get("matrix")
     if mr:
