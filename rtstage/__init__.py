@@ -17,7 +17,6 @@ Everything whose name begins with an underscore is private.
 """
 
 from .dither import DITHER_KINDS
-from .engine import Engine, EngineSettings
 from .errors import RtstageError
 from .shapers import BUILTIN_SHAPERS, get_shaper
 
@@ -27,6 +26,11 @@ __all__ = ["Engine", "EngineSettings", "render_file", "DITHER_KINDS", "BUILTIN_S
 
 
 def __getattr__(name):
+    # Imported on first use, so that ``import rtstage`` (and ``python -m rtstage.kernel_aot``) stays light.
+    if name in ("Engine", "EngineSettings"):
+        from . import engine
+
+        return getattr(engine, name)
     if name == "render_file":
         from .render import render_file
 

@@ -42,10 +42,13 @@ def decode(buf, fmt, channels):
     elif fmt == "s32le":
         x = np.frombuffer(buf, dtype="<i4") * 2.0**-31
     elif fmt == "s24le":
-        b = np.frombuffer(buf, dtype=np.uint8).reshape(-1, 3).astype(np.int32)
-        v = b[:, 0] | (b[:, 1] << 8) | (b[:, 2] << 16)
-        v = np.where(v >= 1 << 23, v - (1 << 24), v)
-        x = v * 2.0**-23
+        # Behind one leading byte, the little-endian int32 at byte 3i holds sample i in its three high
+        # bytes (the low byte is the previous sample's last, or the pad): an arithmetic shift by 8 gives
+        # the sample with its sign, read with a 3-byte stride and no per-byte work.
+        n = len(buf) // 3
+        padded = bytearray(3 * n + 1)
+        padded[1:] = memoryview(buf)[: 3 * n]
+        x = (np.ndarray((n,), dtype="<i4", buffer=padded, strides=(3,)) >> 8) * 2.0**-23
     else:
         raise RtstageError(f"unknown input format '{fmt}' (known: {', '.join(INPUT_FORMATS)})")
     return x.reshape(-1, channels)

@@ -31,7 +31,7 @@ import numpy as np
 
 from .errors import RtstageError
 from .files.tomlread import load_toml
-from .kernel import MAX_TAPS  # the kernel owns its array sizes: at most MAX_TAPS error-filter taps
+from .kernel_layout import MAX_TAPS  # the kernel owns its array sizes: at most MAX_TAPS error-filter taps
 
 
 @dataclass(frozen=True)

@@ -53,3 +53,18 @@ def test_every_example_parses(name, argv):
     # argparse exits (SystemExit) on any option or argument the command does not take.
     args = build_parser().parse_args(argv)
     assert argv[0] == name.split()[0] and callable(getattr(args, "handler", None))
+
+
+def test_one_command_parser_is_the_full_parsers_subparser():
+    # main() registers only the command named on the command line (so `rtstage render` imports no
+    # live engine); that parser must accept and document exactly what the full parser does.
+    from rtstage.cli import COMMAND_MODULES
+
+    full = dict(_commands())
+    for module in COMMAND_MODULES:
+        name = module.rsplit(".", 1)[1]
+        sub = next(a for a in build_parser(name)._actions if isinstance(a, argparse._SubParsersAction))
+        assert list(sub.choices) == [name]
+        assert sub.choices[name].format_help() == full[name].format_help()
+    sub = next(a for a in build_parser("no-such-command")._actions if isinstance(a, argparse._SubParsersAction))
+    assert len(sub.choices) == len(COMMAND_MODULES)

@@ -149,3 +149,38 @@ def test_pipe_errors(extra, message):
     assert proc.returncode == 2
     assert len(err) == 1 and message in err[0]
     assert proc.stdout == b""
+
+
+def test_frames_pass_as_they_arrive():
+    # A live feed: the words of the frames that have arrived come out before the producer sends more
+    # (a read takes what has arrived; the writer flushes once it has caught up).  The reference for
+    # the words is the engine on the same samples, as above.
+    x = signal(frames=30, seed=4)
+    raw = np.round(x * 2**15).astype("<i2").tobytes()
+    engine = Engine(EngineSettings(bits=16, seed=9), 2, 48000, format_bits=16)
+    expected = engine.process(pcm.decode(raw, "s16le", 2))
+    proc = subprocess.Popen(PIPE + ["--samplerate", "48000", "--channels", "2", "--in-format", "s16le",
+                                    "--out-format", "s16le", "--seed", "9"],
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)  # fmt: skip
+    got = []
+    try:
+        for first, last in ((0, 10), (10, 11), (11, 30)):
+            proc.stdin.write(raw[first * 4 : last * 4])
+            proc.stdin.flush()
+            want = (last - first) * 4
+            chunk = b""
+            while len(chunk) < want:
+                got.clear()
+                reader = threading.Thread(target=lambda n=want - len(chunk): got.append(os.read(proc.stdout.fileno(), n)))
+                reader.start()
+                reader.join(60)
+                assert not reader.is_alive(), f"frames {first}..{last - 1} did not come out while the feed waited"
+                assert got[0], "the pipe ended early"
+                chunk += got[0]
+            assert_array_equal(np.frombuffer(chunk, "<i2").reshape(-1, 2), expected[first:last])
+        proc.stdin.close()
+        assert proc.wait(60) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()

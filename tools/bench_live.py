@@ -30,7 +30,12 @@ fraction of the 64-frame period (measured inside the compiled callback with
 ``clock_gettime(CLOCK_MONOTONIC)``).  Goals: rtstage with and without the busy
 thread <= 1.0x the native count; callback worst case <= 25 % of the period.
 
-Usage: ``.venv/bin/python tools/bench_live.py [--seconds 40]``
+Usage: ``.venv/bin/python tools/bench_live.py [--seconds 40] [--cpu N]``
+
+On a virtual machine the host takes a virtual CPU away for milliseconds at
+a time, and only the clients running there are late; with ``--cpu N``
+every process of the run shares one CPU, so such a stall reaches all of
+them and the comparison with the native client is about the clients alone.
 """
 
 import argparse
@@ -179,8 +184,13 @@ def ratio(a, b):
 def main(argv=None):
     p = argparse.ArgumentParser()
     p.add_argument("--seconds", type=float, default=40.0, help="measured seconds per phase")
+    p.add_argument("--cpu", type=int, default=None,
+                   help="run everything (server, native client, rtstage and its load) on this one CPU, so that a "
+                        "stall of that CPU (a virtual machine's host taking it away) reaches every client alike")
     args = p.parse_args(argv)
     T = args.seconds
+    if args.cpu is not None:
+        os.sched_setaffinity(0, {args.cpu})  # inherited by every process started below
     workdir = tempfile.mkdtemp(prefix="rtstage-bench-live-")
     try:
         binary = build_native(workdir)
@@ -201,7 +211,7 @@ def main(argv=None):
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
 
-    report = {"seconds_per_phase": T, "server_realtime": server_realtime, "period_frames": PERIOD,
+    report = {"seconds_per_phase": T, "server_realtime": server_realtime, "period_frames": PERIOD, "cpu": args.cpu,
               "native_alone": {"late_per_min": per_minute(alone["late"], T), "jumps_per_min": per_minute(alone["jumps"], T),
                                "xruns_per_min": per_minute(alone["xruns"], T)}}
     for name, r in phases.items():

@@ -30,3 +30,11 @@ if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
   .venv/bin/python -m pip install -q -e ".[test,plot]" >&2
   touch "$stamp"
 fi
+
+# The kernel built ahead of time (rtstage.kernel_aot), so offline commands start without numba.
+# It is named by a fingerprint of the kernel's sources, the toolchain and the processor: a
+# current build is kept (quick), a stale one rebuilt (about a minute).
+if ! .venv/bin/python -m rtstage.kernel_aot --check >/dev/null; then
+  echo "bootstrap: building the kernel ahead of time" >&2
+  .venv/bin/python -m rtstage.kernel_aot >&2
+fi

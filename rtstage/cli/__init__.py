@@ -12,6 +12,7 @@ log for an internal error), never a traceback.
 """
 
 import importlib
+import sys
 
 from .. import __version__
 from ..files.exits import Parser, UsageError, run_guarded
@@ -32,11 +33,21 @@ COMMAND_MODULES = (
     "rtstage.cli.feed",
     "rtstage.cli.linktest",
 )
-"""Modules that register subcommands, in the order ``--help`` lists them."""
+"""Modules that register subcommands, in the order ``--help`` lists them; each registers the command its name ends with."""
 
 
-def build_parser():
-    """The full argument parser (usage errors become one line, see :class:`rtstage.files.exits.Parser`)."""
+def build_parser(command=None):
+    """The argument parser (usage errors become one line, see :class:`rtstage.files.exits.Parser`).
+
+    Parameters
+    ----------
+    command : str or None
+        A command name: register that command alone, so that a command
+        imports only what it needs (``rtstage render`` starts without the
+        live engine and without numba).  None, or a name that is no
+        command: register every command (``--help``, and the message that
+        lists the commands).
+    """
     parser = Parser(
         prog="rtstage",
         description="Real-time output stage: dithered requantization to a shorter word length, live or offline.",
@@ -45,7 +56,8 @@ def build_parser():
     )
     parser.add_argument("--version", action="version", version=f"rtstage {__version__}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name in COMMAND_MODULES:
+    modules = [m for m in COMMAND_MODULES if m.rsplit(".", 1)[1] == command] or COMMAND_MODULES
+    for name in modules:
         importlib.import_module(name).register(subparsers)
     add_all_examples(subparsers)
     return parser
@@ -61,7 +73,8 @@ def main(argv=None):
     install_signal_handlers()
 
     def command():
-        parser = build_parser()
+        args_given = sys.argv[1:] if argv is None else argv
+        parser = build_parser(args_given[0] if args_given and not args_given[0].startswith("-") else None)
         args, extra = parser.parse_known_args(argv)
         if extra:  # name the command whose options they are not
             choices = parser._subparsers._group_actions[0].choices

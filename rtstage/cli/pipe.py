@@ -7,7 +7,7 @@ from .. import pcm
 from ..engine import Engine, check_word_fits
 from ..errors import RtstageError
 from ..log import log
-from ..pipe import pipe_stream
+from ..pipe import DEFAULT_BLOCKSIZE, pipe_stream
 from ..render import check_stream_shape, report_counts
 from .options import add_engine_options, check_blocksize, settings_from_args
 
@@ -23,7 +23,9 @@ def register(subparsers):
     p.add_argument("--channels", type=int, required=True, help="interleaved channel count")
     p.add_argument("--in-format", choices=sorted(pcm.INPUT_FORMATS), required=True, help="input sample format")
     p.add_argument("--out-format", choices=sorted(pcm.OUTPUT_FORMATS), required=True, help="output sample format")
-    p.add_argument("--blocksize", type=int, default=1024, help="frames per read (default 1024)")
+    p.add_argument("--blocksize", type=int, default=DEFAULT_BLOCKSIZE,
+                   help=f"most frames per read; a read takes what has arrived, so a live feed is not held back "
+                        f"(default {DEFAULT_BLOCKSIZE})")
     add_engine_options(p)
     p.set_defaults(handler=run_pipe)
 

@@ -10,8 +10,9 @@ from dataclasses import replace
 
 import numpy as np
 
-from .. import kernel as K
-from ..kernel import container_bits_of, word_dtype
+from .. import kernel_layout as K
+from ..kernel_aot import offline_kernel
+from ..kernel_layout import container_bits_of, word_dtype
 from ..dither import DITHER_BY_CODE, DITHER_KINDS, feedback_peak_lsb
 from ..errors import RtstageError
 from ..settings import (ERROR_CEILING_DBFS, GAIN_RAMP_SECONDS, MAX_CHANNELS, MAX_SAMPLERATE, MIN_SAMPLERATE,
@@ -151,6 +152,9 @@ class Engine(StateView):
         super().__init__(K.KernelState(self.channels))
         self._publish = None
         self._no_tap = np.empty((0, self.channels), dtype=np.float64)
+        self.process_block = offline_kernel()
+        """The kernel this engine's :meth:`process` calls: :func:`rtstage.kernel.process_block`, built ahead of
+        time when a current build exists (:mod:`rtstage.kernel_aot`), else through numba."""
         self.apply(self.settings, ramp=False)
         self.state.reset(start_frame)
 
@@ -247,11 +251,11 @@ class Engine(StateView):
         if quantizer_in is None:
             quantizer_in = self._no_tap
         if requantized is None:
-            K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays())
+            self.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays())
         else:
             if requantized.dtype != out.dtype or requantized.ndim != 2 or requantized.shape[0] < x.shape[0]:
                 raise RtstageError("requantized must be an array of the output dtype with at least as many rows as x")
-            K.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays(), requantized)
+            self.process_block(x, out, quantizer_in, x.shape[0], *self.state.arrays(), requantized)
         return out
 
 

@@ -20,7 +20,7 @@ import threading
 
 import numpy as np
 
-from .. import kernel as K
+from .. import kernel_layout as K
 
 
 def group_bounds(channels, nthreads):
@@ -76,7 +76,7 @@ class ChannelGroups:
     def _run_group(self, i, x, out, vq, n):
         g0, g1 = self.bounds[i], self.bounds[i + 1]
         tap = vq[:, g0:g1] if vq is not None else self._no_tap[i]
-        K.process_block(x[:, g0:g1], out[:, g0:g1], tap, n, *self.states[i].arrays())
+        self.engine.process_block(x[:, g0:g1], out[:, g0:g1], tap, n, *self.states[i].arrays())
 
     def _work(self, i, jobs):
         while True:
