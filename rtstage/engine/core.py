@@ -157,6 +157,10 @@ class Engine(StateView):
         time when a current build exists (:mod:`rtstage.kernel_aot`), else through numba."""
         self.apply(self.settings, ramp=False)
         self.state.reset(start_frame)
+        # Load the kernel now, on a block of no frames (which changes nothing), so that the first real
+        # block does not pay numba's cache load (a few tenths of a second) inside a timed path.
+        self.process_block(np.zeros((0, self.channels)), np.zeros((0, self.channels), dtype=self.dtype), self._no_tap,
+                           0, *self.state.arrays())  # fmt: skip
 
     @property
     def container_bits(self):
