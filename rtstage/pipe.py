@@ -10,6 +10,7 @@ The ``rtstage pipe`` command (:mod:`rtstage.cli.pipe`) builds the engine and
 reports what happened.
 """
 
+import os
 import queue
 import threading
 from dataclasses import dataclass
@@ -37,11 +38,24 @@ DEFAULT_BLOCKSIZE = 8192
 _EOF = object()
 
 
-def _read_some(stream, view):
-    """One read into ``view``: what has arrived (at least a byte, unless the input ended), never waiting for more."""
-    read1 = getattr(stream, "readinto1", None)
-    n = read1(view) if read1 is not None else stream.readinto(view)
-    return n or 0
+def _reader_of(stream):
+    """A function reading into a buffer what has arrived on ``stream`` (at least a byte, 0 at its end).
+
+    A stream with a file descriptor is read with ``os.readv`` on it, below
+    Python's buffered reader: the reader thread then holds no lock of the
+    stream, so the process can end while the thread still waits for input
+    (a buffered reader's lock held by a daemon thread aborts the interpreter
+    at exit).  The stream must not have been read from before.  Other
+    streams are read with ``readinto1`` (or ``readinto``).
+    """
+    try:
+        fd = stream.fileno()
+    except (AttributeError, OSError, ValueError):
+        fd = None
+    if fd is not None:
+        return lambda view: os.readv(fd, [view])
+    read1 = getattr(stream, "readinto1", None) or stream.readinto
+    return lambda view: read1(view) or 0
 
 
 class _Reader:
@@ -55,7 +69,7 @@ class _Reader:
     """
 
     def __init__(self, instream, in_format, channels, blocksize, depth):
-        self._in = instream
+        self._read = _reader_of(instream)
         self._format = in_format
         self._channels = channels
         self._frame_bytes = pcm.bytes_per_sample(in_format) * channels
@@ -69,7 +83,7 @@ class _Reader:
         carry = 0
         try:
             while True:
-                got = _read_some(self._in, view[carry:])
+                got = self._read(view[carry:])
                 have = carry + got
                 whole = have - have % self._frame_bytes
                 if whole:
